@@ -1,0 +1,12 @@
+//! varpost: posterior uncertainty for strong-constraint 4D-Var.
+//!
+//! Wraps an existing cost function and adjoint gradient ([`problem::Problem`]), checks the gradient,
+//! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
+//! preconditioned MALA / HMC chains from there, with convergence diagnostics.
+
+pub mod error;
+pub mod precond;
+pub mod problem;
+
+pub use error::{Error, EvalError, Result};
+pub use problem::{Counted, EvalCounts, Problem};
