@@ -54,8 +54,13 @@ pub(crate) fn mean(x: &[f64]) -> f64 {
     x.iter().sum::<f64>() / x.len() as f64
 }
 
-/// Sample variance with divisor n − 1.
+/// Sample variance with divisor n − 1; exactly zero for equal values (the rounded mean of equal values
+/// can differ from them in the last bit, which would otherwise leave a variance of order 1e-32 and turn
+/// the documented ∞ / NaN R-hat of constant chains into an arbitrary huge number).
 pub(crate) fn var(x: &[f64]) -> f64 {
+    if x.iter().all(|&v| v == x[0]) {
+        return 0.0;
+    }
     let m = mean(x);
     x.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / (x.len() as f64 - 1.0)
 }
@@ -129,8 +134,8 @@ pub(crate) fn quantile_sorted(sorted: &[f64], p: f64) -> f64 {
     if n == 1 {
         return sorted[0];
     }
-    let m = 1.0 + p * (1.0 - 1.0 - 1.0);
-    let aleph = n as f64 * p + m;
+    // mquantiles' m = alphap + p (1 − alphap − betap) = 1 − p, exactly.
+    let aleph = n as f64 * p + (1.0 - p);
     let k = aleph.clamp(1.0, (n - 1) as f64).floor();
     let gamma = (aleph - k).clamp(0.0, 1.0);
     let k = k as usize;

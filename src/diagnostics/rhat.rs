@@ -29,10 +29,10 @@ pub(crate) fn rank_rhat(m: &Matrix) -> f64 {
     let bulk = basic_rhat(&rank_normalise(&halves));
     let med = median(&flat(&halves));
     let tail = basic_rhat(&rank_normalise(&map(&halves, |x| (x - med).abs())));
-    if bulk.is_nan() || !(tail > bulk) {
-        bulk
-    } else {
+    if tail > bulk {
         tail
+    } else {
+        bulk
     }
 }
 
