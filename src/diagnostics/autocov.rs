@@ -1,7 +1,15 @@
 //! Autocovariance and autocorrelation of one chain, by FFT.
 
+use std::cell::RefCell;
+
 use rustfft::num_complex::Complex;
 use rustfft::FftPlanner;
+
+thread_local! {
+    // Plans are cached by the planner; one per thread so repeated calls (many components, several
+    // transformations each) reuse them.
+    static PLANNER: RefCell<FftPlanner<f64>> = RefCell::new(FftPlanner::new());
+}
 
 /// Autocovariance estimates γ̂_t = (1/n) Σ_{i=0}^{n−1−t} (x_i − x̄)(x_{i+t} − x̄) for every lag t = 0..n−1.
 ///
@@ -18,12 +26,15 @@ pub fn autocovariance(chain: &[f64]) -> Vec<f64> {
     let m = (2 * n).next_power_of_two();
     let mut buf: Vec<Complex<f64>> = chain.iter().map(|&x| Complex::new(x - mean, 0.0)).collect();
     buf.resize(m, Complex::new(0.0, 0.0));
-    let mut planner = FftPlanner::new();
-    planner.plan_fft_forward(m).process(&mut buf);
+    let (forward, inverse) = PLANNER.with(|p| {
+        let mut p = p.borrow_mut();
+        (p.plan_fft_forward(m), p.plan_fft_inverse(m))
+    });
+    forward.process(&mut buf);
     for z in buf.iter_mut() {
         *z = Complex::new(z.norm_sqr(), 0.0);
     }
-    planner.plan_fft_inverse(m).process(&mut buf);
+    inverse.process(&mut buf);
     // rustfft does not normalise: the round trip multiplies by m.
     let scale = 1.0 / (m as f64 * n as f64);
     buf[..n].iter().map(|z| z.re * scale).collect()

@@ -106,9 +106,9 @@ fn average_ranks(values: &[f64]) -> Vec<f64> {
 
 /// Rank normalisation: every value replaced by z = Φ⁻¹((r − 3/8) / (S + 1/4)), r its average rank among
 /// all S pooled values — Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, Bayesian Analysis 16(2),
-/// section 4.1, with Blom's (1958) offset. The paper prints the denominator as S − 1/4; Blom's fractional
-/// rank (r − c) / (S − 2c + 1) with c = 3/8 gives S + 1/4, which is what ArviZ and the authors' own R code
-/// compute, and what we follow so results agree with them.
+/// section 4.1, with Blom's (1958) offset. The method is sometimes stated with the denominator S − 1/4;
+/// Blom's fractional rank (r − c) / (S − 2c + 1) with c = 3/8 gives S + 1/4, which is what ArviZ computes
+/// (the tests check against it) and what we follow.
 pub(crate) fn rank_normalise(m: &Matrix) -> Matrix {
     let values = flat(m);
     let ranks = average_ranks(&values);

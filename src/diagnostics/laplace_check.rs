@@ -33,7 +33,7 @@ impl ImportanceCheck {
 /// Computes the Kish effective sample size (Σ w)² / Σ w² — Kish 1965, Survey Sampling — and Pareto
 /// smoothed importance sampling (PSIS) — Vehtari, Simpson, Gelman, Yao & Gabry 2024, "Pareto smoothed
 /// importance sampling", JMLR 25: the M = ⌈min(0.2 S, 3 √S)⌉ largest weights are fitted with a
-/// generalized Pareto distribution above the (M + 1)-th largest weight (the fit of [`gpd_fit`]); its
+/// generalized Pareto distribution above the (M + 1)-th largest weight (Zhang & Stephens 2009 with a weakly informative prior on the shape); its
 /// shape is k-hat; those weights are replaced by the fitted quantiles at (i − 1/2) / M, capped at the
 /// largest raw weight, and all weights are normalised. k-hat < min(1 − 1/log10 S, 0.7) says the
 /// weighted estimates are reliable (paper, section 3). The arithmetic follows ArviZ's `psislw` with
@@ -163,32 +163,18 @@ fn gpd_fit(y: &[f64]) -> (f64, f64) {
         .zip(&k)
         .map(|(&b, &kj)| nf * ((-(b / kj)).ln() - kj - 1.0))
         .collect();
-    let mut weights: Vec<f64> = len_scale
+    let weights = len_scale
         .iter()
-        .map(|&lj| 1.0 / len_scale.iter().map(|&li| (li - lj).exp()).sum::<f64>())
+        .map(|&lj| 1.0 / len_scale.iter().map(|&li| (li - lj).exp()).sum::<f64>());
+    // Grid points of negligible weight dropped, then the weights normalised.
+    let kept: Vec<(f64, f64)> = theta
+        .iter()
+        .copied()
+        .zip(weights)
+        .filter(|&(_, w)| w >= 10.0 * f64::EPSILON)
         .collect();
-    let mut theta = theta;
-    if weights.iter().any(|&w| w < 10.0 * f64::EPSILON) {
-        let keep: Vec<bool> = weights.iter().map(|&w| w >= 10.0 * f64::EPSILON).collect();
-        theta = theta
-            .iter()
-            .zip(&keep)
-            .filter(|(_, &k)| k)
-            .map(|(&t, _)| t)
-            .collect();
-        weights = weights
-            .iter()
-            .zip(&keep)
-            .filter(|(_, &k)| k)
-            .map(|(&w, _)| w)
-            .collect();
-    }
-    let total: f64 = weights.iter().sum();
-    let theta_post: f64 = theta
-        .iter()
-        .zip(&weights)
-        .map(|(t, w)| t * (w / total))
-        .sum();
+    let total: f64 = kept.iter().map(|&(_, w)| w).sum();
+    let theta_post: f64 = kept.iter().map(|&(t, w)| t * (w / total)).sum();
     let k_post = k_of(theta_post);
     let sigma = -k_post / theta_post;
     let k_post = (nf * k_post + PRIOR_K * 0.5) / (nf + PRIOR_K);

@@ -17,6 +17,19 @@
 //! folding, and localization: an improved R-hat for assessing convergence of MCMC", Bayesian Analysis
 //! 16(2), and Vehtari, Simpson, Gelman, Yao & Gabry 2024, "Pareto smoothed importance sampling",
 //! JMLR 25; the arithmetic follows ArviZ 0.23, against which the tests check.
+//!
+//! ```
+//! use varpost::diagnostics::{component_stats, Verdict};
+//! // Four chains of one component (a real run has hundreds of draws per chain).
+//! let chains: Vec<Vec<f64>> = (0..4)
+//!     .map(|c| (0..100).map(|i| ((i * 37 + c * 11) % 100) as f64 / 100.0).collect())
+//!     .collect();
+//! let slices: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
+//! let stats = component_stats(&slices)?;
+//! let verdict = Verdict::from_components(&[stats], slices.len(), None);
+//! println!("{}", verdict.text());
+//! # Ok::<(), varpost::Error>(())
+//! ```
 
 mod autocov;
 mod bfmi;

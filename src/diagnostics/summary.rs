@@ -14,7 +14,7 @@ pub struct ComponentStats {
     pub mean: f64,
     /// Standard deviation of all draws (divisor S − 1).
     pub sd: f64,
-    /// Rank-normalised split R-hat ([`rhat`](super::rhat)); NaN for constant draws.
+    /// Rank-normalised split R-hat ([`rhat`](crate::diagnostics::rhat())); NaN for constant draws.
     pub rhat: f64,
     /// Bulk effective sample size.
     pub ess_bulk: f64,
