@@ -36,7 +36,7 @@ pub(crate) fn checked(chains: &[&[f64]], what: &str) -> Result<Matrix> {
     for (c, chain) in chains.iter().enumerate() {
         if let Some(i) = chain.iter().position(|x| !x.is_finite()) {
             return Err(Error::Numerical(format!(
-                "{what}: draw {i} of chain {c} is {} ; the diagnostics need finite draws (check the \
+                "{what}: draw {i} of chain {c} is {}; the diagnostics need finite draws (check the \
                  sampler output for blow-ups)",
                 chain[i]
             )));

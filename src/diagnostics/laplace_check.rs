@@ -8,8 +8,10 @@ use crate::error::{Error, Result};
 /// Outcome of [`importance_check`].
 #[derive(Debug, Clone, Serialize)]
 pub struct ImportanceCheck {
-    /// Pareto k-hat of the importance weights (+∞ when the tail is too short to fit, fewer than 5 draws
-    /// beyond the cut-off).
+    /// Pareto k-hat of the importance weights: +∞ when the tail is too short to fit (fewer than 5 draws
+    /// beyond the cut-off, as ArviZ reports it), −∞ when all weights are equal (the proposal is the
+    /// target up to a constant, as for a linear-Gaussian problem; ArviZ reports +∞ there because its
+    /// tail is empty, which would wrongly fail an exact approximation).
     pub khat: f64,
     /// The k-hat below which the weighted estimates are reliable: min(1 − 1/log10(S), 0.7).
     pub khat_threshold: f64,
@@ -82,7 +84,11 @@ pub fn importance_check(log_target: &[f64], log_proposal: &[f64]) -> Result<Impo
     let sum: f64 = raw.iter().sum();
     let kish_ess = sum * sum / raw.iter().map(|w| w * w).sum::<f64>();
 
-    let (smoothed_log, khat) = psis_smooth(&log_w);
+    let (smoothed_log, khat) = if log_w.iter().all(|&v| v == log_w[0]) {
+        (vec![-(s as f64).ln(); s], f64::NEG_INFINITY)
+    } else {
+        psis_smooth(&log_w)
+    };
     let smoothed_weights = smoothed_log.iter().map(|lw| lw.exp()).collect();
     let khat_threshold = (1.0 - 1.0 / (s as f64).log10()).min(0.7);
     Ok(ImportanceCheck {
@@ -203,6 +209,10 @@ mod tests {
         let c = importance_check(&lt, &lq).unwrap();
         assert!((c.kish_ess - 50.0).abs() < 1e-9);
         assert!(c.smoothed_weights.iter().all(|w| (w - 0.02).abs() < 1e-12));
+        // An exact proposal has no tail at all: reported as k-hat = -inf, reliable (bounded weights give
+        // k <= 0 — Vehtari et al. 2024, JMLR 25; the -inf value is this crate's documented convention).
+        assert_eq!(c.khat, f64::NEG_INFINITY);
+        assert!(c.reliable());
     }
 
     #[test]

@@ -235,6 +235,9 @@ mod tests {
         assert_eq!(v.laplace_adequate, Some(true));
         assert!(v.checks.iter().all(|c| c.passed));
         assert!(v.text().contains("background-error covariance B"));
+        let json = serde_json::to_value(&v).unwrap();
+        assert_eq!(json["status"], "converged");
+        assert_eq!(json["checks"][0]["name"], "rhat");
     }
 
     #[test]
