@@ -310,6 +310,7 @@ fn khat_small_for_wider_gaussian_proposal_large_for_heavy_target() {
 
 #[test]
 fn bad_input_gives_errors_not_panics() {
+    // Input validation, not a numerical fact: errors name the chain and draw (no external source).
     let a = [0.1, 0.2, 0.3, 0.4, 0.5];
     let short = [0.1, 0.2, 0.3, 0.4];
     assert!(component_stats(&[]).is_err());

@@ -173,6 +173,7 @@ mod tests {
 
     #[test]
     fn bad_input_is_an_error() {
+        // Input validation, not a numerical fact (no external source).
         let a = [1.0, 2.0, 3.0, 4.0];
         let b = [1.0, 2.0, 3.0];
         assert!(checked(&[], "x").is_err());

@@ -217,6 +217,7 @@ mod tests {
 
     #[test]
     fn bad_input() {
+        // Input validation, not a numerical fact (no external source).
         assert!(importance_check(&[0.0, 1.0], &[0.0]).is_err());
         assert!(importance_check(&[0.0, f64::NAN], &[0.0, 0.0]).is_err());
         assert!(importance_check(&[0.0, 0.0], &[0.0, f64::INFINITY]).is_err());
