@@ -4,9 +4,12 @@
 //! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
+pub mod adapt;
 pub mod error;
+pub mod interrupt;
 pub mod precond;
 pub mod problem;
+pub mod sampler;
 
 pub use error::{Error, EvalError, Result};
 pub use problem::{Counted, EvalCounts, Problem};

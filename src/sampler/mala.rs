@@ -1,0 +1,97 @@
+//! Preconditioned Metropolis-adjusted Langevin algorithm (MALA) in whitened coordinates.
+//!
+//! With step size ε and g = ∇_u log π(u), the proposal is one Euler step of the Langevin diffusion,
+//!
+//! ```text
+//! u' = u + (ε²/2) g(u) + ε z,   z ~ N(0, I),
+//! ```
+//!
+//! accepted with probability min(1, π(u') q(u | u') / (π(u) q(u' | u))), where
+//! log q(b | a) = −|b − a − (ε²/2) g(a)|² / (2ε²) + const. Whitening by the Hessian at the analysis makes
+//! this the Langevin proposal preconditioned by H⁻¹ in model space.
+//!
+//! The proposal variance ε² best scales as d^(−1/3), with mean acceptance about 0.574 at the optimum.
+//!
+//! References: Roberts & Tweedie 1996, "Exponential convergence of Langevin distributions and their
+//! discrete approximations", Bernoulli 2(4); Roberts & Rosenthal 1998, "Optimal scaling of discrete
+//! approximations to Langevin diffusions", JRSS-B 60(1).
+
+use super::{mh_decide, standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use crate::error::Result;
+
+/// MALA; the step size is passed to each step.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Mala;
+
+/// log q(to | from) up to a constant, for the Langevin proposal with step `eps`.
+fn log_q(to: &[f64], from: &ChainState, eps: f64) -> f64 {
+    let h = 0.5 * eps * eps;
+    let s: f64 = to
+        .iter()
+        .zip(&from.u)
+        .zip(&from.grad)
+        .map(|((t, f), g)| {
+            let r = t - f - h * g;
+            r * r
+        })
+        .sum();
+    -s / (2.0 * eps * eps)
+}
+
+impl Kernel for Mala {
+    fn name(&self) -> &'static str {
+        "mala"
+    }
+    fn uses_gradient(&self) -> bool {
+        true
+    }
+    fn has_step_size(&self) -> bool {
+        true
+    }
+    /// 0.574: Roberts & Rosenthal 1998.
+    fn default_target_accept(&self) -> f64 {
+        0.574
+    }
+    /// ε0 = d^(−1/6), i.e. proposal variance d^(−1/3) (the scaling of Roberts & Rosenthal 1998; the
+    /// constant 1 is our choice, the warm-up tunes it).
+    fn initial_step_size(&self, n: usize) -> f64 {
+        (n.max(1) as f64).powf(-1.0 / 6.0)
+    }
+
+    fn step(
+        &self,
+        target: &Target<'_>,
+        rng: &mut ChainRng,
+        state: &ChainState,
+        eps: f64,
+    ) -> Result<(ChainState, StepInfo)> {
+        let n = state.u.len();
+        let h = 0.5 * eps * eps;
+        let z = standard_normal(rng, n);
+        let u_new: Vec<f64> = (0..n)
+            .map(|i| state.u[i] + h * state.grad[i] + eps * z[i])
+            .collect();
+        let mut grad = vec![0.0; n];
+        let Some(lp) = target.log_density_grad(&u_new, &mut grad)? else {
+            return Ok((state.clone(), StepInfo::nonfinite(eps, 1, f64::NAN)));
+        };
+        let proposal = ChainState {
+            u: u_new,
+            log_density: lp,
+            grad,
+        };
+        let log_ratio = lp - state.log_density + log_q(&state.u, &proposal, eps)
+            - log_q(&proposal.u, state, eps);
+        let (accept_prob, accepted) = mh_decide(rng, log_ratio);
+        let info = StepInfo {
+            accept_prob,
+            accepted,
+            divergent: false,
+            nonfinite: false,
+            energy: f64::NAN,
+            step_size: eps,
+            n_steps: 1,
+        };
+        Ok((if accepted { proposal } else { state.clone() }, info))
+    }
+}
