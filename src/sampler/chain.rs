@@ -189,13 +189,16 @@ impl Runner {
                 ))
             })?,
         };
-        let eps0 = config
-            .initial_step_size
-            .unwrap_or_else(|| kernel.initial_step_size(n));
-        let accept = config
-            .target_accept
-            .unwrap_or_else(|| kernel.default_target_accept());
-        let warmup = Warmup::init(config.warmup, eps0, accept, kernel.has_step_size())?;
+        let warmup = match kernel.spec(n).step_size {
+            Some(spec) => Warmup::init(
+                config.warmup,
+                config.initial_step_size.unwrap_or(spec.initial),
+                config.target_accept.unwrap_or(spec.target_accept),
+                true,
+            )?,
+            // No step size: the schedule only counts the burn-in iterations.
+            None => Warmup::init(config.warmup, 1.0, 0.5, false)?,
+        };
         let writer = DrawsWriter::create(&draws_path(out_dir, index), n, index)?;
         Ok(Runner {
             index,
@@ -271,7 +274,7 @@ impl Runner {
                 self.warmup = w;
                 self.stats.warmup.add(&info);
             } else {
-                if (self.iteration - cfg.warmup + 1) % cfg.thin == 0 {
+                if (self.iteration - cfg.warmup + 1).is_multiple_of(cfg.thin) {
                     let mut x = vec![0.0; next.u.len()];
                     ctx.target.to_model(&next.u, &mut x);
                     let flags = if info.accepted { FLAG_ACCEPTED } else { 0 }
@@ -460,7 +463,8 @@ pub fn run(
     }
     save(&mut runners, &counts_warmup, &counts_sampling, true)?;
 
-    let has_step = kernel.has_step_size();
+    let spec = kernel.spec(n);
+    let has_step = spec.step_size.is_some();
     let chains: Vec<ChainSummary> = runners
         .iter()
         .map(|r| r.summary(has_step, out_dir))
@@ -469,7 +473,7 @@ pub fn run(
         .iter()
         .fold(Welford::new(n), |acc, r| acc.merge(&r.moments));
     Ok(SampleResult {
-        kernel: kernel.name(),
+        kernel: spec.name,
         chains,
         mean: pooled.mean().to_vec(),
         variance: pooled.variance(),

@@ -22,7 +22,10 @@
 use rand::RngExt;
 
 use super::integrator::{leapfrog, Phase};
-use super::{mh_decide, standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use super::{
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, StepSizeSpec,
+    Target,
+};
 use crate::error::Result;
 
 /// Energy error above which a trajectory is called divergent (common practice, no source).
@@ -46,24 +49,19 @@ impl Hmc {
 }
 
 impl Kernel for Hmc {
-    fn name(&self) -> &'static str {
-        "hmc"
-    }
-    fn uses_gradient(&self) -> bool {
-        true
-    }
-    fn has_step_size(&self) -> bool {
-        true
-    }
-    /// 0.651: the asymptotic optimum of Beskos et al. 2013. General-purpose samplers often aim higher
-    /// (0.8) for robustness on awkward targets; the whitened targets here are close to N(0, I), where
-    /// the optimum applies, and the option `target_accept` overrides it.
-    fn default_target_accept(&self) -> f64 {
-        0.651
-    }
+    /// Target acceptance 0.651, the asymptotic optimum of Beskos et al. 2013 (general-purpose samplers
+    /// often aim higher, 0.8, for robustness on awkward targets; the whitened targets here are close
+    /// to N(0, I), where the optimum applies, and the option `target_accept` overrides it).
     /// ε0 = d^(−1/4) (the scaling of Beskos et al. 2013; the constant 1 is our choice).
-    fn initial_step_size(&self, n: usize) -> f64 {
-        (n.max(1) as f64).powf(-0.25)
+    fn spec(&self, n: usize) -> KernelSpec {
+        KernelSpec {
+            name: "hmc",
+            uses_gradient: true,
+            step_size: Some(StepSizeSpec {
+                initial: (n.max(1) as f64).powf(-0.25),
+                target_accept: 0.651,
+            }),
+        }
     }
 
     fn step(
@@ -89,7 +87,7 @@ impl Kernel for Hmc {
                 return Ok((state.clone(), StepInfo::nonfinite(eps_j, k, h0)));
             }
             let h = phase.energy();
-            if !(h - h0 <= DIVERGENCE_THRESHOLD) {
+            if !h.is_finite() || h - h0 > DIVERGENCE_THRESHOLD {
                 let info = StepInfo {
                     accept_prob: 0.0,
                     accepted: false,
@@ -104,15 +102,8 @@ impl Kernel for Hmc {
         }
         let h1 = phase.energy();
         let (accept_prob, accepted) = mh_decide(rng, h0 - h1);
-        let info = StepInfo {
-            accept_prob,
-            accepted,
-            divergent: false,
-            nonfinite: false,
-            energy: if accepted { h1 } else { h0 },
-            step_size: eps_j,
-            n_steps,
-        };
+        let energy = if accepted { h1 } else { h0 };
+        let info = StepInfo::decided(accept_prob, accepted, eps_j, n_steps, energy);
         Ok((if accepted { phase.state } else { state.clone() }, info))
     }
 }

@@ -5,8 +5,8 @@
 //! min(1, π(u') q(u) / (π(u) q(u'))). It needs no gradient: one forward run per step.
 //!
 //! With `t_dof = Some(ν)` the proposal is the multivariate Student-t with ν degrees of freedom and the
-//! same centre and scale, u' = z √(ν / w), z ~ N(0, I), w ~ χ²_ν, log q(u) = −(ν + n)/2 · log(1 + |u|²/ν)
-//! + const: heavier tails than the posterior keep the importance ratio π/q bounded, which the Gaussian
+//! same centre and scale, u' = z √(ν / w), z ~ N(0, I), w ~ χ²_ν, and
+//! log q(u) = −(ν + n)/2 · log(1 + |u|²/ν) + const: heavier tails than the posterior keep the importance ratio π/q bounded, which the Gaussian
 //! proposal does not guarantee when the posterior is wider than its Laplace approximation.
 //!
 //! References: Tierney 1994, "Markov chains for exploring posterior distributions", Ann. Statist. 22(4)
@@ -15,7 +15,9 @@
 
 use rand_distr::{ChiSquared, Distribution};
 
-use super::{dot, mh_decide, standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use super::{
+    dot, mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, Target,
+};
 use crate::error::{Error, Result};
 
 /// The proposal of [`LaplaceMh`].
@@ -67,22 +69,12 @@ impl LaplaceMh {
 }
 
 impl Kernel for LaplaceMh {
-    fn name(&self) -> &'static str {
-        "laplace-mh"
-    }
-    fn uses_gradient(&self) -> bool {
-        false
-    }
-    fn has_step_size(&self) -> bool {
-        false
-    }
-    /// Not used: there is no step size to adapt.
-    fn default_target_accept(&self) -> f64 {
-        0.5
-    }
-    /// Not used: there is no step size.
-    fn initial_step_size(&self, _n: usize) -> f64 {
-        1.0
+    fn spec(&self, _n: usize) -> KernelSpec {
+        KernelSpec {
+            name: "laplace-mh",
+            uses_gradient: false,
+            step_size: None,
+        }
     }
 
     fn step(
@@ -98,15 +90,7 @@ impl Kernel for LaplaceMh {
         };
         let log_ratio = lp - state.log_density + self.log_q(&state.u) - self.log_q(&u_new);
         let (accept_prob, accepted) = mh_decide(rng, log_ratio);
-        let info = StepInfo {
-            accept_prob,
-            accepted,
-            divergent: false,
-            nonfinite: false,
-            energy: f64::NAN,
-            step_size: f64::NAN,
-            n_steps: 0,
-        };
+        let info = StepInfo::decided(accept_prob, accepted, f64::NAN, 0, f64::NAN);
         let next = if accepted {
             ChainState {
                 u: u_new,

@@ -16,7 +16,10 @@
 //! discrete approximations", Bernoulli 2(4); Roberts & Rosenthal 1998, "Optimal scaling of discrete
 //! approximations to Langevin diffusions", JRSS-B 60(1).
 
-use super::{mh_decide, standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use super::{
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, StepSizeSpec,
+    Target,
+};
 use crate::error::Result;
 
 /// MALA; the step size is passed to each step.
@@ -39,23 +42,17 @@ fn log_q(to: &[f64], from: &ChainState, eps: f64) -> f64 {
 }
 
 impl Kernel for Mala {
-    fn name(&self) -> &'static str {
-        "mala"
-    }
-    fn uses_gradient(&self) -> bool {
-        true
-    }
-    fn has_step_size(&self) -> bool {
-        true
-    }
-    /// 0.574: Roberts & Rosenthal 1998.
-    fn default_target_accept(&self) -> f64 {
-        0.574
-    }
-    /// ε0 = d^(−1/6), i.e. proposal variance d^(−1/3) (the scaling of Roberts & Rosenthal 1998; the
-    /// constant 1 is our choice, the warm-up tunes it).
-    fn initial_step_size(&self, n: usize) -> f64 {
-        (n.max(1) as f64).powf(-1.0 / 6.0)
+    /// Target acceptance 0.574 (Roberts & Rosenthal 1998); ε0 = d^(−1/6), i.e. proposal variance
+    /// d^(−1/3) (their scaling; the constant 1 is our choice, the warm-up tunes it).
+    fn spec(&self, n: usize) -> KernelSpec {
+        KernelSpec {
+            name: "mala",
+            uses_gradient: true,
+            step_size: Some(StepSizeSpec {
+                initial: (n.max(1) as f64).powf(-1.0 / 6.0),
+                target_accept: 0.574,
+            }),
+        }
     }
 
     fn step(
@@ -83,15 +80,7 @@ impl Kernel for Mala {
         let log_ratio = lp - state.log_density + log_q(&state.u, &proposal, eps)
             - log_q(&proposal.u, state, eps);
         let (accept_prob, accepted) = mh_decide(rng, log_ratio);
-        let info = StepInfo {
-            accept_prob,
-            accepted,
-            divergent: false,
-            nonfinite: false,
-            energy: f64::NAN,
-            step_size: eps,
-            n_steps: 1,
-        };
+        let info = StepInfo::decided(accept_prob, accepted, eps, 1, f64::NAN);
         Ok((if accepted { proposal } else { state.clone() }, info))
     }
 }

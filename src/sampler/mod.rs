@@ -68,6 +68,24 @@ pub struct StepInfo {
 }
 
 impl StepInfo {
+    /// A Metropolis–Hastings decision.
+    pub fn decided(
+        accept_prob: f64,
+        accepted: bool,
+        step_size: f64,
+        n_steps: u32,
+        energy: f64,
+    ) -> Self {
+        StepInfo {
+            accept_prob,
+            accepted,
+            divergent: false,
+            nonfinite: false,
+            energy,
+            step_size,
+            n_steps,
+        }
+    }
     /// A rejection caused by a failed evaluation.
     pub fn nonfinite(step_size: f64, n_steps: u32, energy: f64) -> Self {
         StepInfo {
@@ -82,22 +100,34 @@ impl StepInfo {
     }
 }
 
+/// The step size of a kernel, as the warm-up needs to know it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StepSizeSpec {
+    /// A first step size before adaptation (it depends on the dimension).
+    pub initial: f64,
+    /// The default target mean acceptance probability of the adaptation.
+    pub target_accept: f64,
+}
+
+/// What the chain runner needs to know about a kernel.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct KernelSpec {
+    /// Short name ("mala", "hmc", "laplace-mh").
+    pub name: &'static str,
+    /// Whether steps use ∇ log π (and so the cached gradient in [`ChainState`]).
+    pub uses_gradient: bool,
+    /// The step size to adapt; `None` for kernels without one.
+    pub step_size: Option<StepSizeSpec>,
+}
+
 /// One Markov kernel that leaves π(u) invariant.
 pub trait Kernel: Send + Sync {
-    /// Short name ("mala", "hmc", "laplace-mh").
-    fn name(&self) -> &'static str;
-    /// Whether steps use ∇ log π (and so the cached gradient in [`ChainState`]).
-    fn uses_gradient(&self) -> bool;
-    /// Whether the kernel has a step size for the warm-up to adapt.
-    fn has_step_size(&self) -> bool;
-    /// The default target mean acceptance probability of the step-size adaptation.
-    fn default_target_accept(&self) -> f64;
-    /// A first step size for dimension `n` before adaptation.
-    fn initial_step_size(&self, n: usize) -> f64;
+    /// Name, gradient use and step size, in dimension `n`.
+    fn spec(&self, n: usize) -> KernelSpec;
 
     /// init: the state at `u`; `None` where π cannot be evaluated there (recoverable failure).
     fn init(&self, target: &Target<'_>, u: Vec<f64>) -> Result<Option<ChainState>> {
-        if self.uses_gradient() {
+        if self.spec(u.len()).uses_gradient {
             let mut grad = vec![0.0; u.len()];
             let lp = target.log_density_grad(&u, &mut grad)?;
             Ok(lp.map(|log_density| ChainState {

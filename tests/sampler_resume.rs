@@ -1,0 +1,355 @@
+//! Reproducibility: same seed, same output whatever the thread count; a run stopped by an interrupt,
+//! a fatal evaluation error or a real SIGKILL and then resumed gives output bit-identical to the
+//! uninterrupted run; foreign or corrupt checkpoints are refused with a clear error.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use common::*;
+use varpost::error::Error;
+use varpost::interrupt::Interrupt;
+use varpost::problem::Counted;
+use varpost::sampler::checkpoint::checkpoint_path;
+use varpost::sampler::{run, Checkpoint, KernelKind, Progress, SampleConfig, SampleResult, Target};
+
+fn cfg(kernel: KernelKind) -> SampleConfig {
+    SampleConfig {
+        kernel,
+        chains: 3,
+        warmup: 100,
+        draws: 300,
+        thin: 2,
+        checkpoint_every: 40,
+        seed: 2024,
+        ..Default::default()
+    }
+}
+
+fn run_gauss(
+    g: Gaussian,
+    cfg: &SampleConfig,
+    dir: &Path,
+    resume: bool,
+    it: &Interrupt,
+) -> varpost::Result<SampleResult> {
+    run_gauss_with(g, cfg, dir, resume, it, &|_, _, _| {})
+}
+
+/// Samples the Gaussian `g` (preconditioned by its exact Hessian) into `dir`, resuming from the
+/// checkpoint there if `resume`.
+fn run_gauss_with(
+    g: Gaussian,
+    cfg: &SampleConfig,
+    dir: &Path,
+    resume: bool,
+    it: &Interrupt,
+    progress: &dyn Progress,
+) -> varpost::Result<SampleResult> {
+    let h = g.a.clone();
+    let m = g.mean.clone();
+    let c = Counted::new(g);
+    let t = Target::new(&c, "gauss4", m, Gaussian::precond(&h))?;
+    let ck = if resume {
+        Some(Checkpoint::load(dir)?)
+    } else {
+        None
+    };
+    run(&t, cfg, dir, ck, it, progress)
+}
+
+/// Interrupts `it` when chain `chain` has done `at` iterations, as SIGINT would.
+fn stop_at(it: &Interrupt, chain: usize, at: u64) -> impl Fn(usize, u64, u64) + Sync {
+    let it = it.clone();
+    move |c, done, _| {
+        if c == chain && done == at {
+            it.trigger()
+        }
+    }
+}
+
+/// The files of a run folder, name and bytes, sorted by name.
+fn files(dir: &Path) -> Vec<(String, Vec<u8>)> {
+    let mut v: Vec<(String, Vec<u8>)> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| !p.to_string_lossy().ends_with(".tmp"))
+        .map(|p| {
+            (
+                p.file_name().unwrap().to_string_lossy().into_owned(),
+                std::fs::read(&p).unwrap(),
+            )
+        })
+        .collect();
+    v.sort();
+    v
+}
+
+fn same_numbers(a: &SampleResult, b: &SampleResult) {
+    let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+    assert_eq!(bits(&a.mean), bits(&b.mean));
+    assert_eq!(bits(&a.variance), bits(&b.variance));
+    assert_eq!(a.draws, b.draws);
+    for (x, y) in a.chains.iter().zip(&b.chains) {
+        assert_eq!(x.stats, y.stats);
+        assert_eq!(x.step_size.map(f64::to_bits), y.step_size.map(f64::to_bits));
+    }
+}
+
+#[test]
+fn same_seed_same_output_with_one_or_two_threads() {
+    for kernel in [KernelKind::Mala, KernelKind::Hmc, KernelKind::LaplaceMh] {
+        let mut out = Vec::new();
+        for threads in [1, 2] {
+            let dir = temp_dir(&format!("threads-{}-{threads}", kernel.name()));
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let c = cfg(kernel);
+            let r = pool
+                .install(|| run_gauss(Gaussian::correlated(4), &c, &dir, false, &Interrupt::new()))
+                .unwrap();
+            out.push((r, files(&dir)));
+            std::fs::remove_dir_all(&dir).unwrap();
+        }
+        same_numbers(&out[0].0, &out[1].0);
+        assert_eq!(out[0].0.counts_sampling, out[1].0.counts_sampling);
+        assert_eq!(
+            out[0].1,
+            out[1].1,
+            "{}: files differ between 1 and 2 threads",
+            kernel.name()
+        );
+        assert_eq!(out[0].1.len(), 4); // three draws files and the checkpoint
+    }
+}
+
+/// Interrupts from the progress callback (as SIGINT would set the flag), at a point in the warm-up and
+/// one while sampling, then resumes; the result must equal the uninterrupted run bit for bit.
+#[test]
+fn interrupted_and_resumed_equals_uninterrupted() {
+    for kernel in [KernelKind::Mala, KernelKind::Hmc, KernelKind::LaplaceMh] {
+        let c = cfg(kernel);
+        let ref_dir = temp_dir(&format!("ref-{}", kernel.name()));
+        let reference = run_gauss(
+            Gaussian::correlated(4),
+            &c,
+            &ref_dir,
+            false,
+            &Interrupt::new(),
+        )
+        .unwrap();
+        let dir = temp_dir(&format!("int-{}", kernel.name()));
+        let mut resume = false;
+        for at in [57u64, 433] {
+            let it = Interrupt::new();
+            let g = Gaussian::correlated(4);
+            let e = run_gauss_with(g, &c, &dir, resume, &it, &stop_at(&it, 1, at)).unwrap_err();
+            assert!(matches!(e, Error::Interrupted(_)), "{e}");
+            assert!(e.to_string().contains("resumed"), "{e}");
+            resume = true;
+        }
+        let r = run_gauss(Gaussian::correlated(4), &c, &dir, true, &Interrupt::new()).unwrap();
+        same_numbers(&reference, &r);
+        assert_eq!(reference.counts_warmup, r.counts_warmup);
+        assert_eq!(reference.counts_sampling, r.counts_sampling);
+        assert_eq!(
+            files(&ref_dir),
+            files(&dir),
+            "{}: resumed files differ",
+            kernel.name()
+        );
+        // Resuming a finished run returns its result without sampling again.
+        let again = run_gauss(Gaussian::correlated(4), &c, &dir, true, &Interrupt::new()).unwrap();
+        same_numbers(&reference, &again);
+        assert_eq!(again.counts_sampling, reference.counts_sampling);
+        std::fs::remove_dir_all(&ref_dir).unwrap();
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+}
+
+/// A non-recoverable failure (a dead model process) stops the run with an error that names the chain
+/// and says the state is saved; resumed with a working problem, the draws equal the uninterrupted run.
+#[test]
+fn fatal_error_saves_state_and_resume_continues_exactly() {
+    let c = cfg(KernelKind::Mala);
+    let ref_dir = temp_dir("fatal-ref");
+    run_gauss(
+        Gaussian::correlated(4),
+        &c,
+        &ref_dir,
+        false,
+        &Interrupt::new(),
+    )
+    .unwrap();
+    let dir = temp_dir("fatal");
+    let mut g = Gaussian::correlated(4);
+    g.fatal_after = Some(700);
+    let e = run_gauss(g, &c, &dir, false, &Interrupt::new()).unwrap_err();
+    let msg = e.to_string();
+    assert!(matches!(e, Error::Eval { .. }), "{msg}");
+    assert!(
+        msg.contains("model process died") && msg.contains("chain") && msg.contains("saved"),
+        "{msg}"
+    );
+    run_gauss(Gaussian::correlated(4), &c, &dir, true, &Interrupt::new()).unwrap();
+    let draws = |d: &Path| {
+        files(d)
+            .into_iter()
+            .filter(|(n, _)| n.ends_with(".draws"))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(draws(&ref_dir), draws(&dir));
+    std::fs::remove_dir_all(&ref_dir).unwrap();
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn foreign_and_corrupt_checkpoints_are_refused() {
+    let c = cfg(KernelKind::Hmc);
+    let dir = temp_dir("foreign");
+    let it = Interrupt::new();
+    let e = run_gauss_with(
+        Gaussian::correlated(4),
+        &c,
+        &dir,
+        false,
+        &it,
+        &stop_at(&it, 0, 10),
+    );
+    assert!(matches!(e, Err(Error::Interrupted(_))));
+    // A fresh run into a folder that holds a checkpoint.
+    let e = run_gauss(Gaussian::correlated(4), &c, &dir, false, &Interrupt::new()).unwrap_err();
+    assert!(
+        e.to_string().contains("checkpoint of an earlier run"),
+        "{e}"
+    );
+    // Another dimension.
+    let e = run_gauss(Gaussian::correlated(3), &c, &dir, true, &Interrupt::new()).unwrap_err();
+    assert!(e.to_string().contains("dimension"), "{e}");
+    // Other settings.
+    let other = SampleConfig {
+        draws: 301,
+        ..c.clone()
+    };
+    let e = run_gauss(
+        Gaussian::correlated(4),
+        &other,
+        &dir,
+        true,
+        &Interrupt::new(),
+    )
+    .unwrap_err();
+    assert!(e.to_string().contains("settings differ"), "{e}");
+    // Another analysis.
+    let mut g = Gaussian::correlated(4);
+    g.mean[2] += 1.0;
+    let e = run_gauss(g, &c, &dir, true, &Interrupt::new()).unwrap_err();
+    assert!(e.to_string().contains("fingerprint"), "{e}");
+    // One flipped byte in the payload.
+    let p = checkpoint_path(&dir);
+    let mut bytes = std::fs::read(&p).unwrap();
+    let k = bytes.len() - 20;
+    bytes[k] ^= 0x01;
+    std::fs::write(&p, &bytes).unwrap();
+    let e = Checkpoint::load(&dir).unwrap_err();
+    assert!(
+        matches!(e, Error::Format { .. }) && e.to_string().contains("corrupt"),
+        "{e}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+const KILL_DIR: &str = "VARPOST_TEST_KILL_DIR";
+
+fn kill_cfg() -> SampleConfig {
+    SampleConfig {
+        kernel: KernelKind::Hmc,
+        chains: 2,
+        warmup: 100,
+        draws: 1500,
+        // Segments longer than the 8 KiB write buffer, so that a kill usually leaves records (and a
+        // partial record) past the checkpoint, which the resume must cut off.
+        checkpoint_every: 200,
+        seed: 77,
+        ..Default::default()
+    }
+}
+
+/// Not a test by itself: the child process of `sigkill_at_any_moment_then_resume_is_bit_identical`,
+/// which starts this test binary again to run only this function.
+#[test]
+#[ignore]
+fn kill_child() {
+    let Ok(dir) = std::env::var(KILL_DIR) else {
+        return;
+    };
+    let dir = PathBuf::from(dir);
+    let mut g = Gaussian::correlated(4);
+    g.sleep_us = 300;
+    let resume = checkpoint_path(&dir).exists();
+    run_gauss(g, &kill_cfg(), &dir, resume, &Interrupt::new()).unwrap();
+}
+
+/// A real SIGKILL (std::process::Child::kill) at three moments of a run, each time resumed in a new
+/// process; the final folder must equal the uninterrupted run's byte for byte.
+#[test]
+fn sigkill_at_any_moment_then_resume_is_bit_identical() {
+    let ref_dir = temp_dir("kill-ref");
+    run_gauss(
+        Gaussian::correlated(4),
+        &kill_cfg(),
+        &ref_dir,
+        false,
+        &Interrupt::new(),
+    )
+    .unwrap();
+    let dir = temp_dir("kill");
+    let exe = std::env::current_exe().unwrap();
+    let spawn = || {
+        Command::new(&exe)
+            .args(["--ignored", "--exact", "kill_child", "--test-threads", "1"])
+            .env(KILL_DIR, &dir)
+            .env("RAYON_NUM_THREADS", "2")
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap()
+    };
+    let mut killed = 0;
+    for delay_ms in [200u64, 550, 900] {
+        let mut child = spawn();
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_millis(delay_ms) {
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        if child.try_wait().unwrap().is_none() {
+            child.kill().unwrap();
+            killed += 1;
+        }
+        child.wait().unwrap();
+        if let Ok(ck) = Checkpoint::load(&dir) {
+            let at: Vec<(u64, u64)> = ck.chains.iter().map(|c| (c.iteration, c.records)).collect();
+            let lens: Vec<u64> = (0..2)
+                .map(|c| {
+                    std::fs::metadata(dir.join(format!("chain-{c}.draws"))).map_or(0, |m| m.len())
+                })
+                .collect();
+            eprintln!("killed after {delay_ms} ms: checkpoint at (iteration, records) {at:?}, file bytes {lens:?}");
+        }
+    }
+    assert!(
+        killed >= 2,
+        "the run finished before it could be killed: make it longer"
+    );
+    let status = spawn().wait().unwrap();
+    assert!(status.success());
+    let ck = Checkpoint::load(&dir).unwrap();
+    assert!(ck.complete);
+    assert_eq!(files(&ref_dir), files(&dir));
+    std::fs::remove_dir_all(&ref_dir).unwrap();
+    std::fs::remove_dir_all(&dir).unwrap();
+}
