@@ -11,7 +11,7 @@
 //! draws are discarded as burn-in, and the schedule leaves the step size alone.
 
 use super::dual_averaging::{DualAveraging, DualAveragingSettings};
-use crate::error::Result;
+use crate::error::{Error, Result};
 
 /// Fraction of the warm-up spent in the first stage.
 const FIRST_STAGE: f64 = 0.25;
@@ -61,6 +61,14 @@ impl Warmup {
         self.done += 1;
         if let Some(c) = self.controller.as_mut() {
             c.update(accept_prob);
+            let (now, avg) = (c.current(), c.averaged());
+            if !(now.is_normal() && avg.is_normal()) {
+                return Err(Error::Numerical(format!(
+                    "step-size adaptation ran away (step size {now:e}, acceptance {accept_prob}): \
+                     the target may be improper (flat in some direction) or the preconditioner \
+                     badly scaled; give an initial step size or check the Hessian"
+                )));
+            }
             if self.done == self.first_stage_len && self.done < self.total {
                 let restart = c.averaged();
                 *c = DualAveraging::new(restart, c.target(), self.settings)?;
@@ -101,6 +109,21 @@ mod tests {
             "{} vs {want}",
             w.finish()
         );
+    }
+
+    // A flat target accepts everything: the step grows without bound, which must end in an error,
+    // not an infinite step size.
+    #[test]
+    fn a_runaway_step_size_is_an_error() {
+        let mut w = Warmup::init(100_000, 1.0, 0.6, true).unwrap();
+        let mut failed = false;
+        while !w.is_done() {
+            if w.update(1.0).is_err() {
+                failed = true;
+                break;
+            }
+        }
+        assert!(failed);
     }
 
     #[test]

@@ -267,7 +267,10 @@ impl Runner {
             };
             if in_warmup {
                 let mut w = self.warmup.clone();
-                w.update(info.accept_prob)?;
+                if let Err(e) = w.update(info.accept_prob) {
+                    self.rng = rng_before;
+                    return Err(e);
+                }
                 if w.is_done() {
                     self.step_size = w.finish();
                 }
