@@ -5,8 +5,12 @@
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
 pub mod adapt;
+pub mod cli;
 pub mod error;
 pub mod interrupt;
+pub mod optimize;
+pub mod output;
+pub mod pipeline;
 pub mod precond;
 pub mod problem;
 pub mod sampler;

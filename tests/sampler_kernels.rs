@@ -6,7 +6,8 @@ mod common;
 use std::path::Path;
 use std::sync::Arc;
 
-use common::*;
+use common::sampling::*;
+use common::temp_dir;
 use nalgebra::{DMatrix, DVector};
 use varpost::interrupt::Interrupt;
 use varpost::precond::Preconditioner;

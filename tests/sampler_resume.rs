@@ -8,7 +8,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::*;
+use common::sampling::*;
+use common::temp_dir;
 use varpost::error::Error;
 use varpost::interrupt::Interrupt;
 use varpost::problem::Counted;
