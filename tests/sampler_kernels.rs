@@ -367,3 +367,54 @@ fn kernels_reproduce_the_linear_gaussian_closed_form() {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 }
+
+/// Refining the metric during the warm-up: with a badly scaled preconditioner (the diagonal of the
+/// Hessian times 4, 1, 1/4, 1), the refined diagonal metric approaches the variances of the whitened
+/// posterior, diag(Rᵀ Σ R) for H_pre = R Rᵀ (closed form), within 25 % on average over the chains (the
+/// estimate comes from the warm-up's middle window; tolerance ours), and the kept draws still have the
+/// exact moments.
+#[test]
+fn refined_metric_matches_the_whitened_variances_and_keeps_the_target() {
+    for kernel in [KernelKind::Mala, KernelKind::Hmc] {
+        let g = Gaussian::correlated(4);
+        let scale = DVector::from_vec(vec![4.0, 1.0, 0.25, 1.0]);
+        let h = DMatrix::from_diagonal(&g.a.diagonal().component_mul(&scale));
+        let r = h.clone().cholesky().unwrap().l();
+        let wv = (r.transpose() * g.cov() * &r).diagonal();
+        let cov = g.cov();
+        let m = g.mean.clone();
+        let dir = temp_dir(&format!("metric-{}", kernel.name()));
+        let cfg = SampleConfig {
+            adapt_metric: true,
+            warmup: 2000,
+            ..config(kernel, 2500)
+        };
+        let (res, draws) = sample(g, m.clone(), Gaussian::precond(&h), &cfg, &dir);
+        // Each chain's estimate rests on few effective draws (MALA mixes slowly along the badly
+        // scaled direction), so the check is on the mean over the chains.
+        for i in 0..4 {
+            let est: Vec<f64> = res
+                .chains
+                .iter()
+                .map(|c| c.metric.as_ref().unwrap()[i])
+                .collect();
+            eprintln!("{}: metric {i}: {est:?} vs {}", kernel.name(), wv[i]);
+            let ratio = mean(&est) / wv[i];
+            assert!(
+                (ratio - 1.0).abs() < 0.25,
+                "{}: metric {i}: {est:?} vs {}",
+                kernel.name(),
+                wv[i]
+            );
+        }
+        for i in 0..4 {
+            check_moments(
+                &component(&draws, i),
+                m[i],
+                cov[(i, i)],
+                &format!("metric {} x{i}", kernel.name()),
+            );
+        }
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+}

@@ -132,9 +132,18 @@ fn same_seed_same_output_with_one_or_two_threads() {
 /// one while sampling, then resumes; the result must equal the uninterrupted run bit for bit.
 #[test]
 fn interrupted_and_resumed_equals_uninterrupted() {
-    for kernel in [KernelKind::Mala, KernelKind::Hmc, KernelKind::LaplaceMh] {
-        let c = cfg(kernel);
-        let ref_dir = temp_dir(&format!("ref-{}", kernel.name()));
+    let with_metric = SampleConfig {
+        adapt_metric: true,
+        ..cfg(KernelKind::Hmc)
+    };
+    for c in [
+        cfg(KernelKind::Mala),
+        cfg(KernelKind::Hmc),
+        cfg(KernelKind::LaplaceMh),
+        with_metric,
+    ] {
+        let kernel = c.kernel;
+        let ref_dir = temp_dir(&format!("ref-{}-{}", kernel.name(), c.adapt_metric));
         let reference = run_gauss(
             Gaussian::correlated(4),
             &c,
@@ -143,7 +152,7 @@ fn interrupted_and_resumed_equals_uninterrupted() {
             &Interrupt::new(),
         )
         .unwrap();
-        let dir = temp_dir(&format!("int-{}", kernel.name()));
+        let dir = temp_dir(&format!("int-{}-{}", kernel.name(), c.adapt_metric));
         let mut resume = false;
         for at in [57u64, 433] {
             let it = Interrupt::new();

@@ -98,6 +98,9 @@ pub struct ChainSummary {
     pub warmup_acceptance: f64,
     /// The adapted step size used for sampling (`None` for kernels without one).
     pub step_size: Option<f64>,
+    /// The refined diagonal metric (inverse mass matrix in whitened coordinates), where the warm-up
+    /// refined it.
+    pub metric: Option<Vec<f64>>,
     /// Divergent trajectories while sampling.
     pub divergences: u64,
     /// Proposals rejected as non-evaluable while sampling.
@@ -192,12 +195,14 @@ impl Runner {
         let warmup = match kernel.spec(n).step_size {
             Some(spec) => Warmup::init(
                 config.warmup,
+                n,
                 config.initial_step_size.unwrap_or(spec.initial),
                 config.target_accept.unwrap_or(spec.target_accept),
                 true,
+                config.adapt_metric,
             )?,
             // No step size: the schedule only counts the burn-in iterations.
-            None => Warmup::init(config.warmup, 1.0, 0.5, false)?,
+            None => Warmup::init(config.warmup, n, 1.0, 0.5, false, false)?,
         };
         let writer = DrawsWriter::create(&draws_path(out_dir, index), n, index)?;
         Ok(Runner {
@@ -258,7 +263,11 @@ impl Runner {
                 self.step_size
             };
             let rng_before = self.rng.clone();
-            let (next, info) = match ctx.kernel.step(ctx.target, &mut self.rng, &self.state, eps) {
+            let metric = self.warmup.metric();
+            let step = ctx
+                .kernel
+                .step(ctx.target, &mut self.rng, &self.state, eps, metric);
+            let (next, info) = match step {
                 Ok(r) => r,
                 Err(e) => {
                     self.rng = rng_before;
@@ -267,7 +276,7 @@ impl Runner {
             };
             if in_warmup {
                 let mut w = self.warmup.clone();
-                if let Err(e) = w.update(info.accept_prob) {
+                if let Err(e) = w.update(info.accept_prob, &next.u) {
                     self.rng = rng_before;
                     return Err(e);
                 }
@@ -313,6 +322,10 @@ impl Runner {
             acceptance: self.stats.sampling.acceptance(),
             warmup_acceptance: self.stats.warmup.acceptance(),
             step_size: has_step.then_some(self.step_size),
+            metric: self
+                .warmup
+                .adapts_metric()
+                .then(|| self.warmup.metric().to_vec()),
             divergences: self.stats.sampling.divergences,
             rejected_nonfinite: self.stats.sampling.rejected_nonfinite,
             stats: self.stats.clone(),

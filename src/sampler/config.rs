@@ -75,6 +75,9 @@ pub struct SampleConfig {
     pub init_scale: f64,
     /// Initial step size before adaptation; `None`: the kernel's dimension-based guess.
     pub initial_step_size: Option<f64>,
+    /// MALA and HMC: refine the Hessian metric during the warm-up by a diagonal one estimated from the
+    /// warm-up draws (default off: the Hessian at the analysis as it is). See [`crate::adapt::warmup`].
+    pub adapt_metric: bool,
 }
 
 impl Default for SampleConfig {
@@ -93,6 +96,7 @@ impl Default for SampleConfig {
             t_dof: None,
             init_scale: 2.0,
             initial_step_size: None,
+            adapt_metric: false,
         }
     }
 }

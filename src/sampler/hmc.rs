@@ -1,7 +1,8 @@
-//! Hamiltonian Monte Carlo in whitened coordinates, unit mass, leapfrog integration.
+//! Hamiltonian Monte Carlo in whitened coordinates, leapfrog integration.
 //!
-//! Each step draws a momentum p ~ N(0, I), follows the leapfrog approximation of the dynamics of
-//! H(u, p) = −log π(u) + |p|²/2 for about the integration time T, and accepts the end point with
+//! Each step draws a momentum p ~ N(0, S⁻¹) (S = diag(s) the inverse mass matrix: all ones, unit mass,
+//! unless the warm-up refined it), follows the leapfrog approximation of the dynamics of
+//! H(u, p) = −log π(u) + ½ pᵀ S p for about the integration time T, and accepts the end point with
 //! probability min(1, exp(H_start − H_end)).
 //!
 //! - Jitter (so that no fixed trajectory length resonates with the target, Neal 2011 section 5.4): the
@@ -70,6 +71,7 @@ impl Kernel for Hmc {
         rng: &mut ChainRng,
         state: &ChainState,
         eps: f64,
+        s: &[f64],
     ) -> Result<(ChainState, StepInfo)> {
         let n = state.u.len();
         let eps_j = eps * rng.random_range(0.9..1.1);
@@ -77,16 +79,18 @@ impl Kernel for Hmc {
         let hi = ((1.2 * self.time / eps_j).ceil() as u64).clamp(lo, u64::from(self.max_steps));
         let n_steps = rng.random_range(lo..=hi) as u32;
 
+        let mut p = standard_normal(rng, n);
+        p.iter_mut().zip(s).for_each(|(pi, si)| *pi /= si.sqrt());
         let mut phase = Phase {
             state: state.clone(),
-            p: standard_normal(rng, n),
+            p,
         };
-        let h0 = phase.energy();
+        let h0 = phase.energy(s);
         for k in 1..=n_steps {
-            if !leapfrog(target, &mut phase, eps_j)? {
+            if !leapfrog(target, &mut phase, eps_j, s)? {
                 return Ok((state.clone(), StepInfo::nonfinite(eps_j, k, h0)));
             }
-            let h = phase.energy();
+            let h = phase.energy(s);
             if !h.is_finite() || h - h0 > DIVERGENCE_THRESHOLD {
                 let info = StepInfo {
                     accept_prob: 0.0,
@@ -100,7 +104,7 @@ impl Kernel for Hmc {
                 return Ok((state.clone(), info));
             }
         }
-        let h1 = phase.energy();
+        let h1 = phase.energy(s);
         let (accept_prob, accepted) = mh_decide(rng, h0 - h1);
         let energy = if accepted { h1 } else { h0 };
         let info = StepInfo::decided(accept_prob, accepted, eps_j, n_steps, energy);

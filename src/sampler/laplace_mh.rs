@@ -83,6 +83,7 @@ impl Kernel for LaplaceMh {
         rng: &mut ChainRng,
         state: &ChainState,
         _step_size: f64,
+        _metric: &[f64],
     ) -> Result<(ChainState, StepInfo)> {
         let u_new = self.draw(rng, state.u.len());
         let Some(lp) = target.log_density(&u_new)? else {

@@ -145,14 +145,16 @@ pub trait Kernel: Send + Sync {
         }
     }
 
-    /// step: one transition from `state` with step size `step_size`. Errors are only the
-    /// non-recoverable evaluation failures.
+    /// step: one transition from `state` with step size `step_size` and the diagonal inverse mass
+    /// matrix `metric` (whitened coordinates; all ones means the preconditioner as it is; kernels
+    /// without a step size ignore it). Errors are only the non-recoverable evaluation failures.
     fn step(
         &self,
         target: &Target<'_>,
         rng: &mut ChainRng,
         state: &ChainState,
         step_size: f64,
+        metric: &[f64],
     ) -> Result<(ChainState, StepInfo)>;
 }
 
