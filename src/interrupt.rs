@@ -51,6 +51,15 @@ impl Interrupt {
 mod tests {
     use super::*;
 
+    // A real SIGTERM sent to this process sets the flag instead of ending the process.
+    #[test]
+    fn a_signal_sets_the_flag() {
+        let it = Interrupt::from_signals().unwrap();
+        assert!(!it.is_set());
+        signal_hook::low_level::raise(signal_hook::consts::SIGTERM).unwrap();
+        assert!(it.is_set());
+    }
+
     #[test]
     fn trigger_is_seen_by_clones() {
         let a = Interrupt::new();

@@ -363,3 +363,76 @@ fn sigkill_at_any_moment_then_resume_is_bit_identical() {
     std::fs::remove_dir_all(&ref_dir).unwrap();
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Not a test by itself: the child process of `sigint_saves_state_and_resume_is_bit_identical`. It
+/// installs the SIGINT/SIGTERM handlers and must come back with `Error::Interrupted`.
+#[test]
+#[ignore]
+fn signal_child() {
+    let Ok(dir) = std::env::var(KILL_DIR) else {
+        return;
+    };
+    let dir = PathBuf::from(dir);
+    let mut g = Gaussian::correlated(4);
+    g.sleep_us = 300;
+    let it = Interrupt::from_signals().unwrap();
+    let e = run_gauss(g, &kill_cfg(), &dir, false, &it).unwrap_err();
+    assert!(matches!(e, Error::Interrupted(_)), "{e}");
+    std::fs::write(dir.join("interrupted.txt"), e.to_string()).unwrap();
+}
+
+/// A real SIGINT (sent with the `kill` utility) makes the run save its state and stop with
+/// `Error::Interrupted`; resumed, the folder equals the uninterrupted run's byte for byte.
+#[test]
+fn sigint_saves_state_and_resume_is_bit_identical() {
+    let ref_dir = temp_dir("sigint-ref");
+    run_gauss(
+        Gaussian::correlated(4),
+        &kill_cfg(),
+        &ref_dir,
+        false,
+        &Interrupt::new(),
+    )
+    .unwrap();
+    let dir = temp_dir("sigint");
+    let mut child = Command::new(std::env::current_exe().unwrap())
+        .args([
+            "--ignored",
+            "--exact",
+            "signal_child",
+            "--test-threads",
+            "1",
+        ])
+        .env(KILL_DIR, &dir)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    std::thread::sleep(Duration::from_millis(400));
+    assert!(
+        child.try_wait().unwrap().is_none(),
+        "the run ended before the signal"
+    );
+    let sent = Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(sent.success());
+    assert!(child.wait().unwrap().success());
+    let msg = std::fs::read_to_string(dir.join("interrupted.txt")).unwrap();
+    assert!(msg.contains("resumed"), "{msg}");
+    std::fs::remove_file(dir.join("interrupted.txt")).unwrap();
+    let ck = Checkpoint::load(&dir).unwrap();
+    assert!(!ck.complete && ck.chains[0].iteration > 0);
+    run_gauss(
+        Gaussian::correlated(4),
+        &kill_cfg(),
+        &dir,
+        true,
+        &Interrupt::new(),
+    )
+    .unwrap();
+    assert_eq!(files(&ref_dir), files(&dir));
+    std::fs::remove_dir_all(&ref_dir).unwrap();
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -88,7 +88,7 @@ pub struct ChainStats {
 }
 
 /// What one chain reports.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct ChainSummary {
     /// Chain index.
     pub chain: usize,
@@ -118,7 +118,7 @@ pub struct ChainSummary {
 }
 
 /// The outcome of a sampling run.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct SampleResult {
     /// The kernel's name.
     pub kernel: &'static str,

@@ -265,17 +265,36 @@ impl DrawsFile {
     }
 }
 
+/// Opens the draws files of chains 0..`chains` of an output folder, checking that they belong
+/// together (same dimension, chain numbers in order). Chains of a partial run may hold different
+/// numbers of records.
+pub fn open_chains(out_dir: &Path, chains: usize) -> Result<Vec<DrawsFile>> {
+    let files = (0..chains)
+        .map(|c| DrawsFile::open(&draws_path(out_dir, c)))
+        .collect::<Result<Vec<_>>>()?;
+    for (c, f) in files.iter().enumerate() {
+        if f.chain != c || f.dim != files[0].dim {
+            return Err(Error::format(
+                &f.path,
+                format!(
+                    "draws file says chain {} of dimension {}, expected chain {c} of dimension {}",
+                    f.chain, f.dim, files[0].dim
+                ),
+            ));
+        }
+    }
+    Ok(files)
+}
+
 /// The draws of one component for every chain of an output folder: `[chain][draw]`.
 pub fn component_per_chain(
     out_dir: &Path,
     chains: usize,
     component: usize,
 ) -> Result<Vec<Vec<f64>>> {
-    (0..chains)
-        .map(|c| {
-            let f = DrawsFile::open(&draws_path(out_dir, c))?;
-            Ok(f.components(&[component])?.remove(0))
-        })
+    open_chains(out_dir, chains)?
+        .iter()
+        .map(|f| Ok(f.components(&[component])?.remove(0)))
         .collect()
 }
 

@@ -8,6 +8,32 @@
 //! - [`chain`]: running the chains in parallel, with warm-up, streaming and checkpoints
 //!   ([`run`]); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
 //!   [`checkpoint`].
+//!
+//! # Example
+//!
+//! ```
+//! use std::sync::Arc;
+//! use varpost::interrupt::Interrupt;
+//! use varpost::precond::IdentityPrecond;
+//! use varpost::problem::linear_gaussian::{LinearGaussian, LinearGaussianConfig};
+//! use varpost::problem::Counted;
+//! use varpost::sampler::{open_chains, run, KernelKind, SampleConfig, Target};
+//! # fn main() -> varpost::Result<()> {
+//! let lg = LinearGaussian::new(LinearGaussianConfig { n: 4, m: 2, rank: 2, ..Default::default() })?;
+//! let x_star = lg.reference()?.mean; // the analysis; here known in closed form
+//! let problem = Counted::new(lg);
+//! let precond = Arc::new(IdentityPrecond::new(4));
+//! let target = Target::new(&problem, "linear-gaussian", x_star, precond)?;
+//! let config = SampleConfig { kernel: KernelKind::Hmc, warmup: 100, draws: 100, ..Default::default() };
+//! let dir = std::env::temp_dir().join(format!("varpost-doc-{}", std::process::id()));
+//! # let _ = std::fs::remove_dir_all(&dir);
+//! let result = run(&target, &config, &dir, None, &Interrupt::new(), &|_, _, _| {})?;
+//! assert_eq!(result.draws, 4 * 100);
+//! let files = open_chains(&dir, config.chains)?;
+//! assert_eq!(files[0].records, 100);
+//! # std::fs::remove_dir_all(&dir).ok();
+//! # Ok(()) }
+//! ```
 
 pub mod chain;
 pub mod checkpoint;
@@ -23,7 +49,7 @@ pub mod welford;
 pub use chain::{run, ChainSummary, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
 pub use config::{KernelKind, SampleConfig};
-pub use draws::{DrawRecord, DrawsFile};
+pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use target::{CountedProblem, Target};
 pub use welford::Welford;
 
