@@ -143,15 +143,8 @@ fn interrupted_and_resumed_equals_uninterrupted() {
         with_metric,
     ] {
         let kernel = c.kernel;
-        let ref_dir = temp_dir(&format!("ref-{}-{}", kernel.name(), c.adapt_metric));
-        let reference = run_gauss(
-            Gaussian::correlated(4),
-            &c,
-            &ref_dir,
-            false,
-            &Interrupt::new(),
-        )
-        .unwrap();
+        let (ref_dir, reference) =
+            reference_run(&format!("ref-{}-{}", kernel.name(), c.adapt_metric), &c);
         let dir = temp_dir(&format!("int-{}-{}", kernel.name(), c.adapt_metric));
         let mut resume = false;
         for at in [57u64, 433] {
@@ -186,15 +179,7 @@ fn interrupted_and_resumed_equals_uninterrupted() {
 #[test]
 fn fatal_error_saves_state_and_resume_continues_exactly() {
     let c = cfg(KernelKind::Mala);
-    let ref_dir = temp_dir("fatal-ref");
-    run_gauss(
-        Gaussian::correlated(4),
-        &c,
-        &ref_dir,
-        false,
-        &Interrupt::new(),
-    )
-    .unwrap();
+    let (ref_dir, _) = reference_run("fatal-ref", &c);
     let dir = temp_dir("fatal");
     let mut g = Gaussian::correlated(4);
     g.fatal_after = Some(700);
@@ -289,17 +274,41 @@ fn kill_cfg() -> SampleConfig {
     }
 }
 
+/// In a child process: its folder and the slowed-down problem it samples.
+fn child_setup() -> Option<(PathBuf, Gaussian)> {
+    let dir = PathBuf::from(std::env::var(KILL_DIR).ok()?);
+    let mut g = Gaussian::correlated(4);
+    g.sleep_us = 300;
+    Some((dir, g))
+}
+
+/// Starts this test binary again, running only the ignored test `name`, on folder `dir`.
+fn spawn_child(name: &str, dir: &Path) -> std::process::Child {
+    Command::new(std::env::current_exe().unwrap())
+        .args(["--ignored", "--exact", name, "--test-threads", "1"])
+        .env(KILL_DIR, dir)
+        .env("RAYON_NUM_THREADS", "2")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap()
+}
+
+/// The uninterrupted run with settings `cfg`, in a fresh folder `name`.
+fn reference_run(name: &str, cfg: &SampleConfig) -> (PathBuf, SampleResult) {
+    let dir = temp_dir(name);
+    let r = run_gauss(Gaussian::correlated(4), cfg, &dir, false, &Interrupt::new()).unwrap();
+    (dir, r)
+}
+
 /// Not a test by itself: the child process of `sigkill_at_any_moment_then_resume_is_bit_identical`,
 /// which starts this test binary again to run only this function.
 #[test]
 #[ignore]
 fn kill_child() {
-    let Ok(dir) = std::env::var(KILL_DIR) else {
+    let Some((dir, g)) = child_setup() else {
         return;
     };
-    let dir = PathBuf::from(dir);
-    let mut g = Gaussian::correlated(4);
-    g.sleep_us = 300;
     let resume = checkpoint_path(&dir).exists();
     run_gauss(g, &kill_cfg(), &dir, resume, &Interrupt::new()).unwrap();
 }
@@ -308,27 +317,9 @@ fn kill_child() {
 /// process; the final folder must equal the uninterrupted run's byte for byte.
 #[test]
 fn sigkill_at_any_moment_then_resume_is_bit_identical() {
-    let ref_dir = temp_dir("kill-ref");
-    run_gauss(
-        Gaussian::correlated(4),
-        &kill_cfg(),
-        &ref_dir,
-        false,
-        &Interrupt::new(),
-    )
-    .unwrap();
+    let (ref_dir, _) = reference_run("kill-ref", &kill_cfg());
     let dir = temp_dir("kill");
-    let exe = std::env::current_exe().unwrap();
-    let spawn = || {
-        Command::new(&exe)
-            .args(["--ignored", "--exact", "kill_child", "--test-threads", "1"])
-            .env(KILL_DIR, &dir)
-            .env("RAYON_NUM_THREADS", "2")
-            .stdout(std::process::Stdio::null())
-            .stderr(std::process::Stdio::null())
-            .spawn()
-            .unwrap()
-    };
+    let spawn = || spawn_child("kill_child", &dir);
     let mut killed = 0;
     for delay_ms in [200u64, 550, 900] {
         let mut child = spawn();
@@ -369,12 +360,9 @@ fn sigkill_at_any_moment_then_resume_is_bit_identical() {
 #[test]
 #[ignore]
 fn signal_child() {
-    let Ok(dir) = std::env::var(KILL_DIR) else {
+    let Some((dir, g)) = child_setup() else {
         return;
     };
-    let dir = PathBuf::from(dir);
-    let mut g = Gaussian::correlated(4);
-    g.sleep_us = 300;
     let it = Interrupt::from_signals().unwrap();
     let e = run_gauss(g, &kill_cfg(), &dir, false, &it).unwrap_err();
     assert!(matches!(e, Error::Interrupted(_)), "{e}");
@@ -385,29 +373,9 @@ fn signal_child() {
 /// `Error::Interrupted`; resumed, the folder equals the uninterrupted run's byte for byte.
 #[test]
 fn sigint_saves_state_and_resume_is_bit_identical() {
-    let ref_dir = temp_dir("sigint-ref");
-    run_gauss(
-        Gaussian::correlated(4),
-        &kill_cfg(),
-        &ref_dir,
-        false,
-        &Interrupt::new(),
-    )
-    .unwrap();
+    let (ref_dir, _) = reference_run("sigint-ref", &kill_cfg());
     let dir = temp_dir("sigint");
-    let mut child = Command::new(std::env::current_exe().unwrap())
-        .args([
-            "--ignored",
-            "--exact",
-            "signal_child",
-            "--test-threads",
-            "1",
-        ])
-        .env(KILL_DIR, &dir)
-        .stdout(std::process::Stdio::null())
-        .stderr(std::process::Stdio::null())
-        .spawn()
-        .unwrap();
+    let mut child = spawn_child("signal_child", &dir);
     std::thread::sleep(Duration::from_millis(400));
     assert!(
         child.try_wait().unwrap().is_none(),
