@@ -244,6 +244,19 @@ fn foreign_and_corrupt_checkpoints_are_refused() {
     g.mean[2] += 1.0;
     let e = run_gauss(g, &c, &dir, true, &Interrupt::new()).unwrap_err();
     assert!(e.to_string().contains("fingerprint"), "{e}");
+    // The checkpoint interval may change: it does not change the draws.
+    let every = SampleConfig {
+        checkpoint_every: 7,
+        ..c.clone()
+    };
+    run_gauss(
+        Gaussian::correlated(4),
+        &every,
+        &dir,
+        true,
+        &Interrupt::new(),
+    )
+    .unwrap();
     // One flipped byte in the payload.
     let p = checkpoint_path(&dir);
     let mut bytes = std::fs::read(&p).unwrap();

@@ -178,7 +178,8 @@ impl Checkpoint {
             .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))
     }
 
-    /// Checks that this checkpoint belongs to `target` and `config`, naming the first difference.
+    /// Checks that this checkpoint belongs to `target` and `config`, naming the first difference. All
+    /// settings must be equal but `checkpoint_every`.
     pub fn check_matches(&self, target: &Target<'_>, config: &SampleConfig) -> Result<()> {
         let path = PathBuf::from(FILE_NAME);
         let bad = |m: String| Err(Error::format(&path, m));
@@ -217,7 +218,12 @@ impl Checkpoint {
                     .into(),
             );
         }
-        if &self.config != config {
+        // The checkpoint interval does not change what the chains compute, so it may differ.
+        let saved = SampleConfig {
+            checkpoint_every: config.checkpoint_every,
+            ..self.config.clone()
+        };
+        if &saved != config {
             return bad(format!(
                 "checkpoint settings differ from this run's: saved {:?}, given {:?}",
                 self.config, config
