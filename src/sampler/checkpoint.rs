@@ -138,7 +138,16 @@ impl Checkpoint {
     /// that says so.
     pub fn load(out_dir: &Path) -> Result<Self> {
         let path = checkpoint_path(out_dir);
-        let bytes = std::fs::read(&path).map_err(|e| Error::io(&path, e))?;
+        let bytes = std::fs::read(&path).map_err(|e| {
+            if e.kind() == std::io::ErrorKind::NotFound {
+                Error::Config(format!(
+                    "{} holds no sampler checkpoint ({FILE_NAME}): there is no run to resume there",
+                    out_dir.display()
+                ))
+            } else {
+                Error::io(&path, e)
+            }
+        })?;
         Checkpoint::decode(&path, &bytes)
     }
 
@@ -253,6 +262,12 @@ mod tests {
         for _ in 0..100 {
             assert_eq!(rand::Rng::next_u64(&mut a), rand::Rng::next_u64(&mut b));
         }
+    }
+
+    #[test]
+    fn a_missing_checkpoint_says_so() {
+        let e = Checkpoint::load(Path::new("/nonexistent-varpost-folder")).unwrap_err();
+        assert!(e.to_string().contains("no run to resume"), "{e}");
     }
 
     #[test]

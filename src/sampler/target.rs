@@ -51,6 +51,11 @@ impl<'a> Target<'a> {
         precond: Arc<dyn Preconditioner>,
     ) -> Result<Self> {
         let n = problem.dim();
+        if n == 0 {
+            return Err(Error::Config(
+                "the problem has dimension 0: there is nothing to sample".into(),
+            ));
+        }
         if x_star.len() != n {
             return Err(Error::Config(format!(
                 "the analysis has {} components but the problem has dimension {n}",
