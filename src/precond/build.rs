@@ -1,0 +1,618 @@
+//! The Hessian of the cost at the analysis x*, estimated by one of four methods, and the Laplace
+//! (analysis-error) covariance C = (∇²J(x*))⁻¹ built from it.
+//!
+//! In 4D-Var the inverse Hessian of the cost at the analysis approximates the analysis-error covariance
+//! (Rabier & Courtier 1992, QJRMS 118; Fisher & Courtier 1995, ECMWF Tech. Memo 220); for nonlinear
+//! dynamics it is only a local Gaussian approximation of the posterior (Gejadze, Shutyaev & Le Dimet 2013,
+//! QJRMS 139).
+//!
+//! Methods ([`LaplaceMethod`]):
+//! - **dense**: the n columns H e_i, then Cholesky; for small n.
+//! - **low-rank**: a randomized eigensolver (Halko, Martinsson & Tropp 2011, "Finding structure with
+//!   randomness", SIAM Review 53(2): randomized range finder with oversampling, Algorithm 4.1, with
+//!   subspace (power) iterations, Algorithm 4.4, and Rayleigh–Ritz, Algorithm 5.3) on the
+//!   prior-preconditioned misfit Hessian v ↦ Sᵀ ∇²J(x*) S v − v, giving the update of the prior in
+//!   [`LowRankPrecond`]. The sketch is enlarged until the smallest trusted Ritz value drops below the
+//!   threshold, the range of the operator is exhausted, or the maximum rank is reached.
+//! - **lbfgs**: the minimiser's (s, y) pairs ([`LbfgsPrecond`]); no extra evaluations.
+//! - **diagonal**: the Hessian diagonal by probing, diag(H) ≈ Σ_k z_k ⊙ H z_k / Σ_k z_k ⊙ z_k with
+//!   Rademacher z_k (Bekas, Kokiopoulou & Saad 2007, "An estimator for the diagonal of a matrix", Appl.
+//!   Numer. Math. 57), or with the unit vectors (exact) when n is at most the number of probes.
+//!
+//! Hessian-vector products come from the problem's own `hess_vec` where offered, otherwise from a
+//! central difference of two gradients,
+//! H v ≈ (∇J(x + h v) − ∇J(x − h v)) / (2h),  h = δ · max(1, ‖x‖_∞) / ‖v‖_∞,  δ = ε^{1/3} ≈ 6.1e-6,
+//! the step balancing the O(h²) truncation error against the O(ε/h) round-off (Nocedal & Wright 2006,
+//! "Numerical Optimization", §8.1, from memory). Products are issued in batches over rayon, so a pool
+//! of adapter processes evaluates them in parallel.
+
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use nalgebra::{DMatrix, SymmetricEigen};
+use rand::{RngExt, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rand_distr::StandardNormal;
+use rayon::prelude::*;
+
+use super::{
+    DensePrecond, DiagonalPrecond, LbfgsPrecond, LowRankPrecond, Preconditioner, PriorSqrt,
+};
+use crate::error::{Error, Result};
+use crate::problem::{Counted, EvalCounts, Prior, Problem};
+
+/// How the Hessian at the analysis is estimated.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum LaplaceMethod {
+    /// All n columns of the Hessian, Cholesky-factorised.
+    Dense,
+    /// Low-rank update of the prior from a randomized eigensolver.
+    LowRank,
+    /// The minimiser's L-BFGS pairs.
+    Lbfgs,
+    /// The Hessian diagonal only.
+    Diagonal,
+}
+
+impl LaplaceMethod {
+    /// The name used in outputs and options ("dense", "low-rank", "lbfgs", "diagonal").
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            LaplaceMethod::Dense => "dense",
+            LaplaceMethod::LowRank => "low-rank",
+            LaplaceMethod::Lbfgs => "lbfgs",
+            LaplaceMethod::Diagonal => "diagonal",
+        }
+    }
+}
+
+impl std::str::FromStr for LaplaceMethod {
+    type Err = Error;
+    fn from_str(s: &str) -> Result<Self> {
+        match s {
+            "dense" => Ok(LaplaceMethod::Dense),
+            "low-rank" => Ok(LaplaceMethod::LowRank),
+            "lbfgs" => Ok(LaplaceMethod::Lbfgs),
+            "diagonal" => Ok(LaplaceMethod::Diagonal),
+            _ => Err(Error::Config(format!(
+                "unknown Hessian method '{s}': choose dense, low-rank, lbfgs or diagonal"
+            ))),
+        }
+    }
+}
+
+/// What the reported eigenvalues are eigenvalues of.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum SpectrumOf {
+    /// Sᵀ ∇²J S − I, with B = S Sᵀ: λ_i > 0 measures how much the observations reduce the prior variance
+    /// along S v_i (the analysis-error variance there is 1 / (1 + λ_i) of the background's).
+    PriorPreconditionedMisfit,
+    /// ∇²J itself (dense method without a prior).
+    Hessian,
+}
+
+/// Options of [`laplace`]; `Default` gives the documented defaults.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(default)]
+pub struct LaplaceOptions {
+    /// Forces a method; `None` chooses automatically: dense for n ≤ `dense_max_dim`, low-rank where a
+    /// prior is known, L-BFGS where pairs are given, diagonal otherwise.
+    pub method: Option<LaplaceMethod>,
+    /// Largest n for the automatic choice of the dense method (default 400).
+    pub dense_max_dim: usize,
+    /// Low-rank: keep eigenvalues λ_i above this (default 0.1, so each discarded direction would have
+    /// reduced the prior variance by less than λ/(1+λ) < 9%).
+    pub eigen_threshold: f64,
+    /// Low-rank: largest rank (default min(n, 1000)); also the number of eigenpairs reported by the
+    /// dense method. A value above n is an error.
+    pub max_rank: Option<usize>,
+    /// Low-rank: first target rank of the sketch, doubled while needed (default 20).
+    pub initial_rank: usize,
+    /// Low-rank: oversampling columns (default 10; Halko et al. 2011, §4.2, suggest 5 or 10).
+    pub oversampling: usize,
+    /// Low-rank: subspace (power) iterations (default 1).
+    pub power_iterations: usize,
+    /// Relative finite-difference step δ (default ε^{1/3}); used only without `hess_vec`.
+    pub fd_step: Option<f64>,
+    /// Diagonal: number of Rademacher probes (default 64).
+    pub diagonal_probes: usize,
+    /// L-BFGS: relative curvature threshold for skipping a pair.
+    pub curvature_eps: f64,
+    /// Seed of the random sketch and probes.
+    pub seed: u64,
+}
+
+impl Default for LaplaceOptions {
+    fn default() -> Self {
+        LaplaceOptions {
+            method: None,
+            dense_max_dim: 400,
+            eigen_threshold: 0.1,
+            max_rank: None,
+            initial_rank: 20,
+            oversampling: 10,
+            power_iterations: 1,
+            fd_step: None,
+            diagonal_probes: 64,
+            curvature_eps: LbfgsPrecond::DEFAULT_CURVATURE_EPS,
+            seed: 0x5eed_1a91ace,
+        }
+    }
+}
+
+/// The Laplace approximation N(x*, C) at the analysis and how it was obtained.
+pub struct Laplace<'a> {
+    /// The method used.
+    pub method: LaplaceMethod,
+    /// The rank of the low-rank update (low-rank method only).
+    pub rank: Option<usize>,
+    /// diag(C): the analysis-error variances.
+    pub variance: Vec<f64>,
+    /// Leading eigenvalues, descending (see `spectrum_of`); empty for the L-BFGS and diagonal methods.
+    pub eigenvalues: Vec<f64>,
+    /// The matching eigen-directions in model space, one per column: S v_i for the prior-preconditioned
+    /// spectrum (B⁻¹-orthonormal), the orthonormal eigenvectors of ∇²J for the Hessian spectrum.
+    pub eigenvectors: Option<DMatrix<f64>>,
+    /// What `eigenvalues` are eigenvalues of.
+    pub spectrum_of: Option<SpectrumOf>,
+    /// The Gaussian metric N(x*, C), L Lᵀ = C.
+    pub precond: Box<dyn Preconditioner + 'a>,
+    /// Evaluations spent building it (from the problem's [`Counted`] wrapper).
+    pub evaluations: EvalCounts,
+    /// Hessian-vector products formed (each an exact product or two gradients).
+    pub products: usize,
+    /// Whether the products were the problem's own (`hess_vec`) rather than finite differences.
+    pub exact_products: bool,
+    /// Dense method: largest |H_ij − H_ji| / max |H_ij| before symmetrising (the finite-difference error).
+    pub asymmetry: Option<f64>,
+    /// Low-rank method: the largest discarded Ritz value, an estimate of λ_{r+1} (so the variance of any
+    /// direction is overestimated by at most about λ_{r+1}/(1+λ_{r+1}) of its prior variance).
+    pub next_eigenvalue: Option<f64>,
+    /// Low-rank method: true when the maximum rank was reached with eigenvalues still above the threshold.
+    pub rank_truncated: bool,
+    /// L-BFGS method: pairs skipped for failing the curvature condition.
+    pub pairs_skipped: usize,
+}
+
+/// Estimates the Hessian at the analysis `x_map` and returns the Laplace approximation there.
+///
+/// `pairs` are the minimiser's L-BFGS pairs (s_k, y_k), oldest first (may be empty unless the L-BFGS
+/// method is asked for). Evaluations go through `problem` and are counted there.
+pub fn laplace<'a, P: Problem + ?Sized>(
+    problem: &'a Counted<P>,
+    x_map: &[f64],
+    pairs: &[(Vec<f64>, Vec<f64>)],
+    opts: &LaplaceOptions,
+) -> Result<Laplace<'a>> {
+    let n = problem.dim();
+    if x_map.len() != n {
+        return Err(Error::Config(format!(
+            "the analysis has {} components but the problem has dimension {n}",
+            x_map.len()
+        )));
+    }
+    if let Some(i) = x_map.iter().position(|v| !v.is_finite()) {
+        return Err(Error::Numerical(format!(
+            "analysis component {i} is not finite"
+        )));
+    }
+    let max_rank = match opts.max_rank {
+        Some(r) if r > n => {
+            return Err(Error::Config(format!(
+                "the maximum rank {r} is larger than the dimension {n}; give a rank of at most {n}"
+            )))
+        }
+        Some(0) => return Err(Error::Config("the maximum rank must be at least 1".into())),
+        Some(r) => r,
+        None => n.min(1000),
+    };
+    if !(opts.eigen_threshold.is_finite() && opts.eigen_threshold >= 0.0) {
+        return Err(Error::Config(format!(
+            "the eigenvalue threshold is {}; it must be a finite number ≥ 0",
+            opts.eigen_threshold
+        )));
+    }
+    let method = opts.method.unwrap_or(if n <= opts.dense_max_dim {
+        LaplaceMethod::Dense
+    } else if problem.prior().is_some() {
+        LaplaceMethod::LowRank
+    } else if !pairs.is_empty() {
+        LaplaceMethod::Lbfgs
+    } else {
+        LaplaceMethod::Diagonal
+    });
+    let start = problem.counts();
+    let op = HessOp::new(problem, x_map, opts.fd_step)?;
+    let mut out = match method {
+        LaplaceMethod::Dense => dense(&op, problem.prior(), max_rank)?,
+        LaplaceMethod::LowRank => {
+            let prior = problem.prior().ok_or_else(|| {
+                Error::Config(
+                    "the low-rank Hessian needs the background-error covariance B: let the problem \
+                     return it from Problem::prior (e.g. a DiagonalPrior or DensePrior), or choose the \
+                     dense, lbfgs or diagonal method"
+                        .into(),
+                )
+            })?;
+            low_rank(&op, prior, max_rank, opts)?
+        }
+        LaplaceMethod::Lbfgs => {
+            let p = match problem.prior() {
+                Some(prior) => {
+                    LbfgsPrecond::with_prior(pairs, PriorSqrt::Borrowed(prior), opts.curvature_eps)?
+                }
+                None => LbfgsPrecond::new(pairs, opts.curvature_eps)?,
+            };
+            let skipped = p.pairs_skipped();
+            let mut l = Laplace::from_precond(LaplaceMethod::Lbfgs, Box::new(p));
+            l.pairs_skipped = skipped;
+            l
+        }
+        LaplaceMethod::Diagonal => diagonal(&op, opts)?,
+    };
+    out.evaluations = problem.counts().since(&start);
+    out.products = op.products.load(Ordering::Relaxed);
+    out.exact_products = op.exact;
+    Ok(out)
+}
+
+impl<'a> Laplace<'a> {
+    fn from_precond(method: LaplaceMethod, precond: Box<dyn Preconditioner + 'a>) -> Self {
+        Laplace {
+            method,
+            rank: None,
+            variance: precond.variance(),
+            eigenvalues: Vec::new(),
+            eigenvectors: None,
+            spectrum_of: None,
+            precond,
+            evaluations: EvalCounts::default(),
+            products: 0,
+            exact_products: false,
+            asymmetry: None,
+            next_eigenvalue: None,
+            rank_truncated: false,
+            pairs_skipped: 0,
+        }
+    }
+}
+
+/// v ↦ ∇²J(x*) v, exact or by central differences of gradients.
+struct HessOp<'p, P: ?Sized> {
+    problem: &'p Counted<P>,
+    x: &'p [f64],
+    exact: bool,
+    /// Absolute step numerator δ · max(1, ‖x‖_∞).
+    step: f64,
+    products: AtomicUsize,
+}
+
+impl<'p, P: Problem + ?Sized> HessOp<'p, P> {
+    fn new(problem: &'p Counted<P>, x: &'p [f64], fd_step: Option<f64>) -> Result<Self> {
+        let delta = fd_step.unwrap_or(f64::EPSILON.cbrt());
+        if !(delta.is_finite() && delta > 0.0) {
+            return Err(Error::Config(format!(
+                "the finite-difference step is {delta}; it must be positive (default 6.1e-6)"
+            )));
+        }
+        let xmax = x.iter().fold(1.0_f64, |m, v| m.max(v.abs()));
+        Ok(HessOp {
+            problem,
+            x,
+            exact: problem.has_hess_vec(),
+            step: delta * xmax,
+            products: AtomicUsize::new(0),
+        })
+    }
+
+    fn apply(&self, v: &[f64]) -> Result<Vec<f64>> {
+        let n = v.len();
+        self.products.fetch_add(1, Ordering::Relaxed);
+        let ctx = "Hessian-vector product at the analysis";
+        let mut out = vec![0.0; n];
+        if self.exact {
+            self.problem
+                .hess_vec(self.x, v, &mut out)
+                .map_err(|e| Error::eval(ctx, e))?;
+            return Ok(out);
+        }
+        let vmax = v.iter().fold(0.0_f64, |m, a| m.max(a.abs()));
+        if vmax == 0.0 {
+            return Ok(out);
+        }
+        let h = self.step / vmax;
+        let xp: Vec<f64> = self.x.iter().zip(v).map(|(x, d)| x + h * d).collect();
+        let xm: Vec<f64> = self.x.iter().zip(v).map(|(x, d)| x - h * d).collect();
+        let mut gm = vec![0.0; n];
+        self.problem
+            .cost_grad(&xp, &mut out)
+            .map_err(|e| Error::eval(ctx, e))?;
+        self.problem
+            .cost_grad(&xm, &mut gm)
+            .map_err(|e| Error::eval(ctx, e))?;
+        for (o, m) in out.iter_mut().zip(&gm) {
+            *o = (*o - m) / (2.0 * h);
+        }
+        if let Some(i) = out.iter().position(|v| !v.is_finite()) {
+            return Err(Error::Numerical(format!(
+                "{ctx}: component {i} of the finite-difference product is not finite"
+            )));
+        }
+        Ok(out)
+    }
+
+    /// Products for a batch of directions, evaluated in parallel.
+    fn apply_batch(&self, vs: &[Vec<f64>]) -> Result<Vec<Vec<f64>>> {
+        vs.par_iter().map(|v| self.apply(v)).collect()
+    }
+
+    /// Products w ↦ Sᵀ H S w − w of the prior-preconditioned misfit Hessian, in parallel.
+    fn apply_whitened_batch(&self, prior: &dyn Prior, ws: &[Vec<f64>]) -> Result<Vec<Vec<f64>>> {
+        ws.par_iter()
+            .map(|w| {
+                let mut sw = vec![0.0; w.len()];
+                prior.mul_sqrt(w, &mut sw);
+                let hsw = self.apply(&sw)?;
+                let mut out = vec![0.0; w.len()];
+                prior.mul_sqrt_t(&hsw, &mut out);
+                for (o, wi) in out.iter_mut().zip(w) {
+                    *o -= wi;
+                }
+                Ok(out)
+            })
+            .collect()
+    }
+}
+
+fn unit(n: usize, i: usize) -> Vec<f64> {
+    let mut e = vec![0.0; n];
+    e[i] = 1.0;
+    e
+}
+
+/// Symmetric eigen-decomposition with eigenpairs sorted by descending eigenvalue.
+fn eigen_descending(a: DMatrix<f64>) -> (Vec<f64>, DMatrix<f64>) {
+    let eig = SymmetricEigen::new(a);
+    let mut order: Vec<usize> = (0..eig.eigenvalues.len()).collect();
+    order.sort_by(|&i, &j| eig.eigenvalues[j].total_cmp(&eig.eigenvalues[i]));
+    let values = order.iter().map(|&i| eig.eigenvalues[i]).collect();
+    let vectors = DMatrix::from_fn(eig.eigenvectors.nrows(), order.len(), |r, c| {
+        eig.eigenvectors[(r, order[c])]
+    });
+    (values, vectors)
+}
+
+fn dense<'a, P: Problem + ?Sized>(
+    op: &HessOp<'_, P>,
+    prior: Option<&dyn Prior>,
+    max_report: usize,
+) -> Result<Laplace<'a>> {
+    let n = op.x.len();
+    let units: Vec<Vec<f64>> = (0..n).map(|i| unit(n, i)).collect();
+    let cols = op.apply_batch(&units)?;
+    let h = DMatrix::from_fn(n, n, |r, c| cols[c][r]);
+    let scale = h.amax();
+    let asym = if scale > 0.0 {
+        (&h - h.transpose()).amax() / scale
+    } else {
+        0.0
+    };
+    let h = (&h + h.transpose()) * 0.5;
+    let precond = DensePrecond::from_hessian(&h)?;
+    let k = max_report.min(n);
+    let (of, values, vectors) = match prior {
+        Some(p) => {
+            let mut s = DMatrix::<f64>::zeros(n, n);
+            for (i, mut col) in s.column_iter_mut().enumerate() {
+                p.mul_sqrt(&units[i], col.as_mut_slice());
+            }
+            let a = s.transpose() * &h * &s - DMatrix::<f64>::identity(n, n);
+            let (vals, vecs) = eigen_descending((&a + a.transpose()) * 0.5);
+            let model = &s * vecs.columns(0, k);
+            (SpectrumOf::PriorPreconditionedMisfit, vals, model)
+        }
+        None => {
+            let (vals, vecs) = eigen_descending(h);
+            (SpectrumOf::Hessian, vals, vecs.columns(0, k).into_owned())
+        }
+    };
+    let mut l = Laplace::from_precond(LaplaceMethod::Dense, Box::new(precond));
+    l.eigenvalues = values[..k].to_vec();
+    l.eigenvectors = Some(vectors);
+    l.spectrum_of = Some(of);
+    l.asymmetry = Some(asym);
+    Ok(l)
+}
+
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    a.iter().zip(b).map(|(x, y)| x * y).sum()
+}
+
+/// Orthonormalises `ys` against `basis` and against each other (classical Gram–Schmidt applied twice,
+/// "twice is enough": Giraud, Langou, Rozložník & van den Eshof 2005, Numer. Math. 101, from memory),
+/// dropping columns whose norm falls below `DROP_TOL` of their original norm (numerically in the span).
+fn orthonormalise(basis: &[Vec<f64>], ys: Vec<Vec<f64>>) -> Vec<Vec<f64>> {
+    const DROP_TOL: f64 = 1e-10;
+    let mut accepted: Vec<Vec<f64>> = Vec::with_capacity(ys.len());
+    for mut y in ys {
+        let norm0 = dot(&y, &y).sqrt();
+        if norm0 == 0.0 || !norm0.is_finite() {
+            continue;
+        }
+        for _ in 0..2 {
+            let coefs: Vec<f64> = basis
+                .par_iter()
+                .chain(accepted.par_iter())
+                .map(|q| dot(q, &y))
+                .collect();
+            for (q, c) in basis.iter().chain(accepted.iter()).zip(&coefs) {
+                for (yi, qi) in y.iter_mut().zip(q) {
+                    *yi -= c * qi;
+                }
+            }
+        }
+        let norm = dot(&y, &y).sqrt();
+        if norm > DROP_TOL * norm0 {
+            y.iter_mut().for_each(|v| *v /= norm);
+            accepted.push(y);
+        }
+    }
+    accepted
+}
+
+fn low_rank<'a, P: Problem + ?Sized>(
+    op: &HessOp<'_, P>,
+    prior: &'a dyn Prior,
+    max_rank: usize,
+    opts: &LaplaceOptions,
+) -> Result<Laplace<'a>> {
+    let n = op.x.len();
+    if prior.dim() != n {
+        return Err(Error::Config(format!(
+            "the prior has dimension {} but the problem has dimension {n}",
+            prior.dim()
+        )));
+    }
+    let p = opts.oversampling;
+    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+    let mut q: Vec<Vec<f64>> = Vec::new();
+    let mut aq: Vec<Vec<f64>> = Vec::new();
+    let mut target = opts.initial_rank.clamp(1, max_rank);
+    let mut exhausted = false;
+    let (values, u) = loop {
+        let want = (target + p).min(n);
+        let add = want.saturating_sub(q.len());
+        if add > 0 {
+            // Range finder on the new columns, kept orthogonal to the basis so far.
+            let omega: Vec<Vec<f64>> = (0..add)
+                .map(|_| {
+                    (0..n)
+                        .map(|_| rng.sample::<f64, _>(StandardNormal))
+                        .collect()
+                })
+                .collect();
+            let mut y = op.apply_whitened_batch(prior, &omega)?;
+            for _ in 0..opts.power_iterations {
+                let yq = orthonormalise(&q, y);
+                if yq.is_empty() {
+                    y = yq;
+                    break;
+                }
+                y = op.apply_whitened_batch(prior, &yq)?;
+            }
+            let new = orthonormalise(&q, y);
+            if new.len() < add {
+                // Part of the sketch fell into span(Q): the numerical range of the operator is captured.
+                exhausted = true;
+            }
+            let anew = op.apply_whitened_batch(prior, &new)?;
+            q.extend(new);
+            aq.extend(anew);
+        }
+        let m = q.len();
+        if m == 0 {
+            break (Vec::new(), DMatrix::<f64>::zeros(0, 0));
+        }
+        // Rayleigh–Ritz: T = Qᵀ A Q.
+        let t_entries: Vec<f64> = (0..m * m)
+            .into_par_iter()
+            .map(|k| {
+                let (i, j) = (k % m, k / m);
+                dot(&q[i], &aq[j])
+            })
+            .collect();
+        let t = DMatrix::from_vec(m, m, t_entries);
+        let (values, u) = eigen_descending((&t + t.transpose()) * 0.5);
+        let trusted = if exhausted || m == n {
+            m
+        } else {
+            m.saturating_sub(p).max(1)
+        };
+        let more =
+            !exhausted && m < n && target < max_rank && values[trusted - 1] > opts.eigen_threshold;
+        if !more {
+            break (values, u);
+        }
+        target = (2 * target).min(max_rank);
+    };
+    let m = q.len();
+    let trusted = if exhausted || m == n {
+        m
+    } else {
+        m.saturating_sub(p).max(1).min(m)
+    };
+    let limit = trusted.min(max_rank);
+    if let Some(&min) = values.last() {
+        if min <= -1.0 + 1e-8 {
+            return Err(Error::Numerical(format!(
+                "the Hessian at the analysis is not positive definite (an eigenvalue of the \
+                 prior-preconditioned misfit Hessian is {min:.3e} ≤ −1): the minimisation may not have \
+                 converged"
+            )));
+        }
+    }
+    let r = values[..limit]
+        .iter()
+        .take_while(|&&l| l > opts.eigen_threshold)
+        .count();
+    let rank_truncated = r == limit && limit == max_rank && limit < m.min(n);
+    let next_eigenvalue = values.get(r).copied().map(|l| l.max(0.0));
+    let mut v = DMatrix::<f64>::zeros(n, r);
+    for j in 0..r {
+        let mut col = v.column_mut(j);
+        for (i, qi) in q.iter().enumerate() {
+            let c = u[(i, j)];
+            for (vr, qr) in col.iter_mut().zip(qi) {
+                *vr += c * qr;
+            }
+        }
+    }
+    drop(aq);
+    drop(q);
+    let lambda = values[..r].to_vec();
+    let precond = LowRankPrecond::new(PriorSqrt::Borrowed(prior), v, lambda.clone())?;
+    let vectors = precond.model_eigenvectors();
+    let mut l = Laplace::from_precond(LaplaceMethod::LowRank, Box::new(precond));
+    l.rank = Some(r);
+    l.eigenvalues = lambda;
+    l.eigenvectors = Some(vectors);
+    l.spectrum_of = Some(SpectrumOf::PriorPreconditionedMisfit);
+    l.next_eigenvalue = next_eigenvalue;
+    l.rank_truncated = rank_truncated;
+    Ok(l)
+}
+
+fn diagonal<'a, P: Problem + ?Sized>(
+    op: &HessOp<'_, P>,
+    opts: &LaplaceOptions,
+) -> Result<Laplace<'a>> {
+    let n = op.x.len();
+    let probes: Vec<Vec<f64>> = if n <= opts.diagonal_probes {
+        (0..n).map(|i| unit(n, i)).collect()
+    } else {
+        let mut rng = ChaCha8Rng::seed_from_u64(opts.seed);
+        (0..opts.diagonal_probes.max(1))
+            .map(|_| {
+                (0..n)
+                    .map(|_| if rng.random::<bool>() { 1.0 } else { -1.0 })
+                    .collect()
+            })
+            .collect()
+    };
+    let products = op.apply_batch(&probes)?;
+    let mut num = vec![0.0; n];
+    let mut den = vec![0.0; n];
+    for (z, hz) in probes.iter().zip(&products) {
+        for i in 0..n {
+            num[i] += z[i] * hz[i];
+            den[i] += z[i] * z[i];
+        }
+    }
+    let hdiag: Vec<f64> = num.iter().zip(&den).map(|(a, b)| a / b).collect();
+    let precond = DiagonalPrecond::from_hessian_diagonal(&hdiag)?;
+    Ok(Laplace::from_precond(
+        LaplaceMethod::Diagonal,
+        Box::new(precond),
+    ))
+}
