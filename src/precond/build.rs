@@ -616,3 +616,248 @@ fn diagonal<'a, P: Problem + ?Sized>(
         Box::new(precond),
     ))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::error::EvalError;
+    use crate::problem::DiagonalPrior;
+    use rand::SeedableRng;
+
+    /// J(x) = ½ (x − xb)ᵀ B⁻¹ (x − xb) + ½ Σ_k (g_kᵀ x − y_k)² / r_k + (c/4) Σ x_i⁴, B diagonal; with c = 0 a
+    /// linear-Gaussian problem.
+    struct Quadratic {
+        prior: DiagonalPrior,
+        g: DMatrix<f64>,
+        y: Vec<f64>,
+        r: Vec<f64>,
+        quartic: f64,
+        exact: bool,
+        give_prior: bool,
+    }
+
+    impl Quadratic {
+        fn new(n: usize, m: usize, seed: u64) -> Self {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed);
+            let std: Vec<f64> = (0..n).map(|i| 0.5 + (i % 7) as f64 * 0.25).collect();
+            let prior = DiagonalPrior::new((0..n).map(|i| (i as f64 * 0.3).sin()).collect(), std).unwrap();
+            let g = DMatrix::from_fn(m, n, |_, _| rng.sample::<f64, _>(StandardNormal));
+            let y = (0..m).map(|k| k as f64 * 0.1).collect();
+            let r = (0..m).map(|k| 0.1 + 0.05 * k as f64).collect();
+            Quadratic { prior, g, y, r, quartic: 0.0, exact: true, give_prior: true }
+        }
+        /// Closed-form posterior covariance (B⁻¹ + Gᵀ R⁻¹ G)⁻¹ and mean, formed densely with nalgebra.
+        fn posterior(&self) -> (DMatrix<f64>, Vec<f64>) {
+            let n = self.g.ncols();
+            let binv = DMatrix::from_diagonal(&self.prior.variance().iter().map(|v| 1.0 / v).collect::<Vec<_>>().into());
+            let rinv = DMatrix::from_diagonal(&self.r.iter().map(|v| 1.0 / v).collect::<Vec<_>>().into());
+            let h = &binv + self.g.transpose() * &rinv * &self.g;
+            let c = h.try_inverse().unwrap();
+            let rhs = &binv * nalgebra::DVector::from_column_slice(self.prior.mean())
+                + self.g.transpose() * &rinv * nalgebra::DVector::from_column_slice(&self.y);
+            let mean = &c * rhs;
+            assert_eq!(mean.len(), n);
+            (c, mean.as_slice().to_vec())
+        }
+    }
+
+    impl Problem for Quadratic {
+        fn dim(&self) -> usize {
+            self.g.ncols()
+        }
+        fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
+            let var = self.prior.variance();
+            let mut j = 0.0;
+            for i in 0..x.len() {
+                let d = x[i] - self.prior.mean()[i];
+                j += 0.5 * d * d / var[i] + 0.25 * self.quartic * x[i].powi(4);
+                grad[i] = d / var[i] + self.quartic * x[i].powi(3);
+            }
+            let gx = &self.g * nalgebra::DVector::from_column_slice(x);
+            for k in 0..self.y.len() {
+                let d = gx[k] - self.y[k];
+                j += 0.5 * d * d / self.r[k];
+                for i in 0..x.len() {
+                    grad[i] += self.g[(k, i)] * d / self.r[k];
+                }
+            }
+            Ok(j)
+        }
+        fn has_hess_vec(&self) -> bool {
+            self.exact && self.quartic == 0.0
+        }
+        fn hess_vec(&self, _x: &[f64], v: &[f64], out: &mut [f64]) -> std::result::Result<(), EvalError> {
+            let var = self.prior.variance();
+            let gv = &self.g * nalgebra::DVector::from_column_slice(v);
+            for i in 0..v.len() {
+                out[i] = v[i] / var[i] + (0..self.y.len()).map(|k| self.g[(k, i)] * gv[k] / self.r[k]).sum::<f64>();
+            }
+            Ok(())
+        }
+        fn prior(&self) -> Option<&dyn Prior> {
+            self.give_prior.then_some(&self.prior as &dyn Prior)
+        }
+    }
+
+    fn assert_rel(a: &[f64], b: &[f64], tol: f64, what: &str) {
+        for (i, (x, y)) in a.iter().zip(b).enumerate() {
+            assert!((x - y).abs() <= tol * y.abs(), "{what}: component {i}: {x} vs {y}");
+        }
+    }
+
+    fn opts(method: LaplaceMethod) -> LaplaceOptions {
+        LaplaceOptions { method: Some(method), ..Default::default() }
+    }
+
+    #[test]
+    fn dense_and_low_rank_match_the_closed_form_posterior() {
+        // Source: for a linear-Gaussian problem the posterior covariance is (B⁻¹ + Gᵀ R⁻¹ G)⁻¹ exactly
+        // (textbook Gaussian conditioning, e.g. Tarantola 2005, "Inverse Problem Theory", §3.2.2).
+        for exact in [true, false] {
+            let mut q = Quadratic::new(40, 6, 3);
+            q.exact = exact;
+            let (c, mean) = q.posterior();
+            let truth: Vec<f64> = c.diagonal().iter().copied().collect();
+            let p = Counted::new(q);
+            for method in [LaplaceMethod::Dense, LaplaceMethod::LowRank] {
+                let l = laplace(&p, &mean, &[], &opts(method)).unwrap();
+                assert_eq!(l.method, method);
+                assert_eq!(l.exact_products, exact);
+                assert_rel(&l.variance, &truth, 1e-6, &format!("{method:?}, exact {exact}"));
+                let mut out = vec![0.0; 40];
+                let e0: Vec<f64> = (0..40).map(|i| if i == 0 { 1.0 } else { 0.0 }).collect();
+                l.precond.mul_cov(&e0, &mut out);
+                assert_rel(&out, c.column(0).as_slice(), 1e-6, "first column of C");
+                if exact {
+                    assert_eq!(l.evaluations.hessvec as usize, l.products);
+                } else {
+                    assert_eq!(l.evaluations.gradient as usize, 2 * l.products);
+                }
+            }
+            let lr = laplace(&p, &mean, &[], &opts(LaplaceMethod::LowRank)).unwrap();
+            // The misfit Hessian Sᵀ Gᵀ R⁻¹ G S has rank 6 (6 observations).
+            assert_eq!(lr.rank, Some(6));
+            assert!(lr.eigenvalues.windows(2).all(|w| w[0] >= w[1]));
+            let dn = laplace(&p, &mean, &[], &opts(LaplaceMethod::Dense)).unwrap();
+            assert_rel(&lr.eigenvalues, &dn.eigenvalues[..6], 1e-6, "leading eigenvalues");
+        }
+    }
+
+    #[test]
+    fn low_rank_sketch_grows_until_the_threshold() {
+        // 120 observations in dimension 200: a misfit of rank 120, more than the first sketch (30
+        // columns). The closed form is as above (Gaussian conditioning).
+        let q = Quadratic::new(200, 120, 11);
+        let (c, mean) = q.posterior();
+        let truth: Vec<f64> = c.diagonal().iter().copied().collect();
+        let p = Counted::new(q);
+        let o = LaplaceOptions { eigen_threshold: 1e-9, ..opts(LaplaceMethod::LowRank) };
+        let l = laplace(&p, &mean, &[], &o).unwrap();
+        assert_eq!(l.rank, Some(120));
+        assert!(!l.rank_truncated);
+        assert_rel(&l.variance, &truth, 1e-6, "grown sketch");
+        // A maximum rank below the misfit rank is reported as truncation.
+        let o = LaplaceOptions { max_rank: Some(40), ..o };
+        let l = laplace(&p, &mean, &[], &o).unwrap();
+        assert_eq!(l.rank, Some(40));
+        assert!(l.rank_truncated);
+    }
+
+    #[test]
+    fn finite_difference_hessian_matches_finitediff() {
+        // Reference: the central-difference Hessian of the general-purpose `finitediff` crate (argmin
+        // project) from the same gradient, on a non-quadratic cost.
+        let mut q = Quadratic::new(8, 3, 5);
+        q.quartic = 0.7;
+        let x: Vec<f64> = (0..8).map(|i| 0.2 * i as f64 - 0.5).collect();
+        let grad = |x: &Vec<f64>| {
+            let mut g = vec![0.0; x.len()];
+            q.cost_grad(x, &mut g).unwrap();
+            Ok(g)
+        };
+        let reference = finitediff::vec::central_hessian(&grad)(&x).unwrap();
+        let p = Counted::new(q);
+        let l = laplace(&p, &x, &[], &opts(LaplaceMethod::Dense)).unwrap();
+        assert!(l.asymmetry.unwrap() < 1e-8);
+        let h = DMatrix::from_fn(8, 8, |r, c| reference[r][c]);
+        let c = h.try_inverse().unwrap();
+        assert_rel(&l.variance, c.diagonal().as_slice(), 1e-6, "finitediff reference");
+    }
+
+    #[test]
+    fn lbfgs_and_diagonal_methods() {
+        // Diagonal: for a diagonal Hessian the probing estimator is exact for any ±1 probe (Bekas,
+        // Kokiopoulou & Saad 2007); here no observations, so H = B⁻¹ and C = B.
+        let mut q = Quadratic::new(300, 0, 2);
+        q.give_prior = false;
+        let b = q.prior.variance();
+        let mean = q.prior.mean().to_vec();
+        let p = Counted::new(q);
+        let l = laplace(&p, &mean, &[], &LaplaceOptions { dense_max_dim: 100, ..Default::default() }).unwrap();
+        assert_eq!(l.method, LaplaceMethod::Diagonal);
+        assert_rel(&l.variance, &b, 1e-12, "diagonal");
+        // L-BFGS chosen automatically when pairs are given; exact (s, H s) pairs along all n unit
+        // directions reproduce H⁻¹ (BFGS with exact line searches on a quadratic: Nocedal & Wright 2006,
+        // Theorem 6.4, from memory — here the secant conditions H_m y_k = s_k pin it down for a diagonal H).
+        let pairs: Vec<(Vec<f64>, Vec<f64>)> = (0..300)
+            .map(|i| {
+                let mut s = vec![0.0; 300];
+                s[i] = 1.0;
+                let mut y = vec![0.0; 300];
+                y[i] = 1.0 / b[i];
+                (s, y)
+            })
+            .collect();
+        let l = laplace(&p, &mean, &pairs, &LaplaceOptions { dense_max_dim: 100, ..Default::default() }).unwrap();
+        assert_eq!(l.method, LaplaceMethod::Lbfgs);
+        assert_eq!(l.evaluations.gradient, 0);
+        assert_rel(&l.variance, &b, 1e-10, "lbfgs");
+    }
+
+    #[test]
+    fn errors_name_the_problem() {
+        let mut q = Quadratic::new(30, 4, 1);
+        q.give_prior = false;
+        let p = Counted::new(q);
+        let x = vec![0.0; 30];
+        let e = laplace(&p, &x, &[], &opts(LaplaceMethod::LowRank)).err().unwrap().to_string();
+        assert!(e.contains("Problem::prior"), "{e}");
+        let e = laplace(&p, &x, &[], &LaplaceOptions { max_rank: Some(31), ..Default::default() })
+            .err()
+            .unwrap()
+            .to_string();
+        assert!(e.contains("larger than the dimension 30"), "{e}");
+        assert!(laplace(&p, &x[..3], &[], &LaplaceOptions::default()).is_err());
+
+        // Negative curvature: a concave quartic term at a point away from 0 is not a minimum.
+        let mut q = Quadratic::new(5, 2, 1);
+        q.quartic = -50.0;
+        let p = Counted::new(q);
+        let e = laplace(&p, &[1.0; 5], &[], &opts(LaplaceMethod::Dense)).err().unwrap().to_string();
+        assert!(e.contains("not positive definite") && e.contains("converged"), "{e}");
+        let e = laplace(&p, &[1.0; 5], &[], &opts(LaplaceMethod::LowRank)).err().unwrap().to_string();
+        assert!(e.contains("not positive definite"), "{e}");
+    }
+
+    /// A problem whose gradient is NaN away from the origin.
+    struct Blows;
+    impl Problem for Blows {
+        fn dim(&self) -> usize {
+            3
+        }
+        fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
+            let bad = x.iter().any(|v| *v != 0.0);
+            for (g, v) in grad.iter_mut().zip(x) {
+                *g = if bad { f64::NAN } else { *v };
+            }
+            Ok(0.0)
+        }
+    }
+
+    #[test]
+    fn non_finite_products_are_errors() {
+        let p = Counted::new(Blows);
+        let e = laplace(&p, &[0.0; 3], &[], &LaplaceOptions::default()).err().unwrap().to_string();
+        assert!(e.contains("Hessian-vector product") && e.contains("not finite"), "{e}");
+    }
+}

@@ -140,8 +140,10 @@ impl<'a> LbfgsPrecond<'a> {
     ) -> Result<LbfgsPrecond<'static>> {
         let n = pairs.first().map_or(0, |p| p.0.len());
         let kept = keep_pairs(pairs, n, curvature_eps)?;
-        let (s, y) = kept.last().expect("keep_pairs returns at least one pair");
-        let gamma = dot(s, y) / dot(y, y);
+        let gamma = match kept.last() {
+            Some((s, y)) => dot(s, y) / dot(y, y),
+            None => return Err(Error::Config("no usable (s, y) pairs".into())),
+        };
         LbfgsPrecond::build(n, Initial::Scaled(gamma), &kept, pairs.len() - kept.len())
     }
 
@@ -383,5 +385,125 @@ impl Preconditioner for LbfgsPrecond<'_> {
         for (o, c) in out.iter_mut().zip(corr.iter()) {
             *o += c;
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::problem::{DiagonalPrior, Prior};
+    use rand::SeedableRng;
+    use rand_chacha::ChaCha8Rng;
+
+    fn gaussian(rng: &mut ChaCha8Rng, r: usize, c: usize) -> DMatrix<f64> {
+        use rand::RngExt;
+        DMatrix::from_fn(r, c, |_, _| rng.sample::<f64, _>(rand_distr::StandardNormal))
+    }
+
+    /// Pairs (s, A s) for a random SPD A, plus one pair with negative curvature in the middle.
+    fn pairs(seed: u64, n: usize, m: usize) -> Vec<(Vec<f64>, Vec<f64>)> {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let g = gaussian(&mut rng, n, n);
+        let a = &g * g.transpose() + DMatrix::identity(n, n);
+        let mut out = Vec::new();
+        for k in 0..m {
+            let s = gaussian(&mut rng, n, 1);
+            let y = if k == m / 2 { -&s } else { &a * &s };
+            out.push((s.as_slice().to_vec(), y.as_slice().to_vec()));
+        }
+        out
+    }
+
+    /// The explicit BFGS recursion on the inverse Hessian, skipping pairs with sᵀy ≤ 0
+    /// (Nocedal & Wright 2006, "Numerical Optimization", eq. 6.17), formed densely.
+    fn dense_bfgs(h0: DMatrix<f64>, pairs: &[(Vec<f64>, Vec<f64>)]) -> DMatrix<f64> {
+        let n = h0.nrows();
+        let mut h = h0;
+        for (s, y) in pairs {
+            let s = DMatrix::from_column_slice(n, 1, s);
+            let y = DMatrix::from_column_slice(n, 1, y);
+            let sy = (s.transpose() * &y)[(0, 0)];
+            if sy <= 0.0 {
+                continue;
+            }
+            let rho = 1.0 / sy;
+            let v = DMatrix::identity(n, n) - &y * s.transpose() * rho;
+            h = v.transpose() * h * v + &s * s.transpose() * rho;
+        }
+        h
+    }
+
+    fn matrix(p: &dyn Preconditioner, f: fn(&dyn Preconditioner, &[f64], &mut [f64])) -> DMatrix<f64> {
+        let n = p.dim();
+        let mut m = DMatrix::zeros(n, n);
+        for j in 0..n {
+            let mut e = vec![0.0; n];
+            e[j] = 1.0;
+            f(p, &e, m.column_mut(j).as_mut_slice());
+        }
+        m
+    }
+
+    fn rel(a: &DMatrix<f64>, b: &DMatrix<f64>) -> f64 {
+        (a - b).norm() / b.norm()
+    }
+
+    fn check(p: &dyn Preconditioner, h: &DMatrix<f64>, what: &str) {
+        let l = matrix(p, |p, u, o| p.mul_sqrt_cov(u, o));
+        assert!(rel(&(&l * l.transpose()), h) < 1e-10, "{what}: product form L Lᵀ vs dense BFGS");
+        let lt = matrix(p, |p, u, o| p.mul_sqrt_cov_t(u, o));
+        assert!(rel(&lt, &l.transpose()) < 1e-12, "{what}: Lᵀ");
+        let c = matrix(p, |p, u, o| p.mul_cov(u, o));
+        assert!(rel(&c, h) < 1e-10, "{what}: compact form vs dense BFGS");
+        let linv = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
+        let n = h.nrows();
+        assert!(rel(&(&linv * &l), &DMatrix::identity(n, n)) < 1e-9, "{what}: L⁻¹ L");
+        let lit = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
+        assert!(rel(&lit, &linv.transpose()) < 1e-9, "{what}: L⁻ᵀ");
+        for (i, (a, b)) in p.variance().iter().zip(h.diagonal().iter()).enumerate() {
+            assert!((a - b).abs() < 1e-10 * b.abs(), "{what}: variance {i}: {a} vs {b}");
+        }
+        let ld: f64 = h.clone().cholesky().unwrap().l().diagonal().iter().map(|d| 2.0 * d.ln()).sum();
+        assert!((p.log_det_cov() - ld).abs() < 1e-8 * (1.0 + ld.abs()), "{what}: log det");
+    }
+
+    #[test]
+    fn scaled_identity_start_matches_dense_bfgs_recursion() {
+        // Reference: the dense BFGS recursion with H_0 = γI, γ = sᵀy/yᵀy of the newest pair (Nocedal &
+        // Wright 2006, eq. 7.20); compact form of Byrd, Nocedal & Schnabel 1994, Theorem 2.2.
+        for seed in 0..8 {
+            let (n, m) = (7 + seed as usize % 4, 3 + seed as usize % 5);
+            let pr = pairs(seed, n, m);
+            let p = LbfgsPrecond::new(&pr, 0.0).unwrap();
+            assert_eq!(p.pairs_skipped(), 1);
+            assert_eq!(p.pairs_used(), m - 1);
+            let (s, y) = pr.last().unwrap();
+            let gamma = dot(s, y) / dot(y, y);
+            assert!((p.initial_scaling().unwrap() - gamma).abs() < 1e-15);
+            let h = dense_bfgs(DMatrix::identity(n, n) * gamma, &pr);
+            check(&p, &h, &format!("seed {seed}"));
+        }
+    }
+
+    #[test]
+    fn prior_start_matches_dense_bfgs_recursion() {
+        // Reference: the same recursion from H_0 = B = diag(σ²).
+        let n = 8;
+        let pr = pairs(42, n, 6);
+        let std: Vec<f64> = (0..n).map(|i| 0.5 + 0.3 * i as f64).collect();
+        let prior = DiagonalPrior::new(vec![0.0; n], std).unwrap();
+        let b = DMatrix::from_diagonal(&prior.variance().into());
+        let p = LbfgsPrecond::with_prior(&pr, PriorSqrt::Borrowed(&prior), 0.0).unwrap();
+        check(&p, &dense_bfgs(b, &pr), "prior start");
+    }
+
+    #[test]
+    fn unusable_pairs_are_errors() {
+        let bad = vec![(vec![1.0, 0.0], vec![-1.0, 0.0])];
+        let e = LbfgsPrecond::new(&bad, 1e-10).err().unwrap().to_string();
+        assert!(e.contains("curvature"), "{e}");
+        let mismatched = vec![(vec![1.0, 0.0], vec![1.0])];
+        assert!(LbfgsPrecond::new(&mismatched, 1e-10).is_err());
+        assert!(LbfgsPrecond::new(&[], 1e-10).is_err());
     }
 }
