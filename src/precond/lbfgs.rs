@@ -397,7 +397,9 @@ mod tests {
 
     fn gaussian(rng: &mut ChaCha8Rng, r: usize, c: usize) -> DMatrix<f64> {
         use rand::RngExt;
-        DMatrix::from_fn(r, c, |_, _| rng.sample::<f64, _>(rand_distr::StandardNormal))
+        DMatrix::from_fn(r, c, |_, _| {
+            rng.sample::<f64, _>(rand_distr::StandardNormal)
+        })
     }
 
     /// Pairs (s, A s) for a random SPD A, plus one pair with negative curvature in the middle.
@@ -433,7 +435,10 @@ mod tests {
         h
     }
 
-    fn matrix(p: &dyn Preconditioner, f: fn(&dyn Preconditioner, &[f64], &mut [f64])) -> DMatrix<f64> {
+    fn matrix(
+        p: &dyn Preconditioner,
+        f: fn(&dyn Preconditioner, &[f64], &mut [f64]),
+    ) -> DMatrix<f64> {
         let n = p.dim();
         let mut m = DMatrix::zeros(n, n);
         for j in 0..n {
@@ -450,21 +455,41 @@ mod tests {
 
     fn check(p: &dyn Preconditioner, h: &DMatrix<f64>, what: &str) {
         let l = matrix(p, |p, u, o| p.mul_sqrt_cov(u, o));
-        assert!(rel(&(&l * l.transpose()), h) < 1e-10, "{what}: product form L Lᵀ vs dense BFGS");
+        assert!(
+            rel(&(&l * l.transpose()), h) < 1e-10,
+            "{what}: product form L Lᵀ vs dense BFGS"
+        );
         let lt = matrix(p, |p, u, o| p.mul_sqrt_cov_t(u, o));
         assert!(rel(&lt, &l.transpose()) < 1e-12, "{what}: Lᵀ");
         let c = matrix(p, |p, u, o| p.mul_cov(u, o));
         assert!(rel(&c, h) < 1e-10, "{what}: compact form vs dense BFGS");
         let linv = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
         let n = h.nrows();
-        assert!(rel(&(&linv * &l), &DMatrix::identity(n, n)) < 1e-9, "{what}: L⁻¹ L");
+        assert!(
+            rel(&(&linv * &l), &DMatrix::identity(n, n)) < 1e-9,
+            "{what}: L⁻¹ L"
+        );
         let lit = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
         assert!(rel(&lit, &linv.transpose()) < 1e-9, "{what}: L⁻ᵀ");
         for (i, (a, b)) in p.variance().iter().zip(h.diagonal().iter()).enumerate() {
-            assert!((a - b).abs() < 1e-10 * b.abs(), "{what}: variance {i}: {a} vs {b}");
+            assert!(
+                (a - b).abs() < 1e-10 * b.abs(),
+                "{what}: variance {i}: {a} vs {b}"
+            );
         }
-        let ld: f64 = h.clone().cholesky().unwrap().l().diagonal().iter().map(|d| 2.0 * d.ln()).sum();
-        assert!((p.log_det_cov() - ld).abs() < 1e-8 * (1.0 + ld.abs()), "{what}: log det");
+        let ld: f64 = h
+            .clone()
+            .cholesky()
+            .unwrap()
+            .l()
+            .diagonal()
+            .iter()
+            .map(|d| 2.0 * d.ln())
+            .sum();
+        assert!(
+            (p.log_det_cov() - ld).abs() < 1e-8 * (1.0 + ld.abs()),
+            "{what}: log det"
+        );
     }
 
     #[test]
