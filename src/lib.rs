@@ -4,7 +4,11 @@
 //! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
+pub mod cli;
 pub mod error;
+pub mod optimize;
+pub mod output;
+pub mod pipeline;
 pub mod precond;
 pub mod problem;
 
