@@ -101,8 +101,8 @@ pub struct LaplaceOptions {
     pub method: Option<LaplaceMethod>,
     /// Largest n for the automatic choice of the dense method (default 400).
     pub dense_max_dim: usize,
-    /// Low-rank: keep eigenvalues λ_i above this (default 0.1, so each discarded direction would have
-    /// reduced the prior variance by less than λ/(1+λ) < 9%).
+    /// Low-rank: keep eigenvalues with |λ_i| above this (default 0.1, so each discarded direction would
+    /// have changed the prior variance by a factor 1/(1+λ) within about 10% of 1).
     pub eigen_threshold: f64,
     /// Low-rank: largest rank (default min(n, 1000)); also the number of eigenpairs reported by the
     /// dense method. A value above n is an error.
@@ -166,8 +166,8 @@ pub struct Laplace<'a> {
     pub exact_products: bool,
     /// Dense method: largest |H_ij − H_ji| / max |H_ij| before symmetrising (the finite-difference error).
     pub asymmetry: Option<f64>,
-    /// Low-rank method: the largest discarded Ritz value, an estimate of λ_{r+1} (so the variance of any
-    /// direction is overestimated by at most about λ_{r+1}/(1+λ_{r+1}) of its prior variance).
+    /// Low-rank method: the discarded Ritz value of largest magnitude, an estimate of λ_{r+1} (so the
+    /// variance along any direction is off by at most about |λ_{r+1}|/(1+λ_{r+1}) of its prior variance).
     pub next_eigenvalue: Option<f64>,
     /// Low-rank method: true when the maximum rank was reached with eigenvalues still above the threshold.
     pub rank_truncated: bool,
@@ -461,6 +461,23 @@ fn orthonormalise(basis: &[Vec<f64>], ys: Vec<Vec<f64>>) -> Vec<Vec<f64>> {
     accepted
 }
 
+/// How many Ritz values of an m-column sketch are trusted: all when the sketch spans the operator's
+/// range (or the whole space), else all but the oversampling columns (at least one).
+fn trusted_count(m: usize, n: usize, oversampling: usize, exhausted: bool) -> usize {
+    if exhausted || m == n {
+        m
+    } else {
+        m.saturating_sub(oversampling).max(1)
+    }
+}
+
+/// Indices of `values` by descending magnitude.
+fn by_magnitude(values: &[f64]) -> Vec<usize> {
+    let mut order: Vec<usize> = (0..values.len()).collect();
+    order.sort_by(|&i, &j| values[j].abs().total_cmp(&values[i].abs()));
+    order
+}
+
 fn low_rank<'a, P: Problem + ?Sized>(
     op: &HessOp<'_, P>,
     prior: &'a dyn Prior,
@@ -524,25 +541,18 @@ fn low_rank<'a, P: Problem + ?Sized>(
             .collect();
         let t = DMatrix::from_vec(m, m, t_entries);
         let (values, u) = eigen_descending((&t + t.transpose()) * 0.5);
-        let trusted = if exhausted || m == n {
-            m
-        } else {
-            m.saturating_sub(p).max(1)
-        };
-        let more =
-            !exhausted && m < n && target < max_rank && values[trusted - 1] > opts.eigen_threshold;
+        let trusted = trusted_count(m, n, p, exhausted);
+        let weakest_trusted = by_magnitude(&values)[trusted - 1];
+        let more = !exhausted
+            && m < n
+            && target < max_rank
+            && values[weakest_trusted].abs() > opts.eigen_threshold;
         if !more {
             break (values, u);
         }
         target = (2 * target).min(max_rank);
     };
     let m = q.len();
-    let trusted = if exhausted || m == n {
-        m
-    } else {
-        m.saturating_sub(p).max(1).min(m)
-    };
-    let limit = trusted.min(max_rank);
     if let Some(&min) = values.last() {
         if min <= -1.0 + 1e-8 {
             return Err(Error::Numerical(format!(
@@ -552,17 +562,29 @@ fn low_rank<'a, P: Problem + ?Sized>(
             )));
         }
     }
-    let r = values[..limit]
+    // Keep the trusted Ritz pairs with |λ| above the threshold (subspace iteration finds the eigenvalues
+    // of largest magnitude; a negative λ > −1, from second-order terms of a nonlinear model, widens the
+    // variance along its direction), at most max_rank of them, reported in descending order.
+    let limit = if m == 0 {
+        0
+    } else {
+        trusted_count(m, n, p, exhausted).min(max_rank)
+    };
+    let order = by_magnitude(&values);
+    let mut kept: Vec<usize> = order[..limit]
         .iter()
-        .take_while(|&&l| l > opts.eigen_threshold)
-        .count();
-    let rank_truncated = r == limit && limit == max_rank && limit < m.min(n);
-    let next_eigenvalue = values.get(r).copied().map(|l| l.max(0.0));
+        .copied()
+        .filter(|&i| values[i].abs() > opts.eigen_threshold)
+        .collect();
+    let r = kept.len();
+    let rank_truncated = r == limit && limit == max_rank && limit < m;
+    let next_eigenvalue = order.get(r).map(|&i| values[i]);
+    kept.sort_unstable();
     let mut v = DMatrix::<f64>::zeros(n, r);
-    for j in 0..r {
+    for (j, &k) in kept.iter().enumerate() {
         let mut col = v.column_mut(j);
         for (i, qi) in q.iter().enumerate() {
-            let c = u[(i, j)];
+            let c = u[(i, k)];
             for (vr, qr) in col.iter_mut().zip(qi) {
                 *vr += c * qr;
             }
@@ -570,7 +592,7 @@ fn low_rank<'a, P: Problem + ?Sized>(
     }
     drop(aq);
     drop(q);
-    let lambda = values[..r].to_vec();
+    let lambda: Vec<f64> = kept.iter().map(|&k| values[k]).collect();
     let precond = LowRankPrecond::new(PriorSqrt::Borrowed(prior), v, lambda.clone())?;
     let vectors = precond.model_eigenvectors();
     let mut l = Laplace::from_precond(LaplaceMethod::LowRank, Box::new(precond));

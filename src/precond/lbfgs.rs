@@ -523,6 +523,21 @@ mod tests {
     }
 
     #[test]
+    fn dense_prior_start_matches_dense_bfgs_recursion() {
+        // Reference: the same recursion from a dense, correlated H_0 = B (B = S Sᵀ, S lower Cholesky).
+        use crate::problem::DensePrior;
+        let n = 9;
+        let pr = pairs(5, n, 7);
+        let b = DMatrix::from_fn(n, n, |i, j| {
+            0.8f64.powi((i as i32 - j as i32).abs()) * (1.0 + 0.1 * i as f64)
+        });
+        let b = (&b + b.transpose()) * 0.5 + DMatrix::identity(n, n);
+        let prior = DensePrior::new(vec![0.0; n], b.clone()).unwrap();
+        let p = LbfgsPrecond::with_prior(&pr, PriorSqrt::Borrowed(&prior), 0.0).unwrap();
+        check(&p, &dense_bfgs(b, &pr), "dense prior start");
+    }
+
+    #[test]
     fn unusable_pairs_are_errors() {
         let bad = vec![(vec![1.0, 0.0], vec![-1.0, 0.0])];
         let e = LbfgsPrecond::new(&bad, 1e-10).err().unwrap().to_string();
