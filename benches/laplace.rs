@@ -12,18 +12,28 @@ use varpost::problem::linear_gaussian::{LinearGaussian, LinearGaussianConfig};
 use varpost::problem::Prior;
 use varpost::{Counted, EvalError, Problem};
 
-/// The same problem with its exact Hessian-vector product hidden, so products are finite differences.
-struct GradientOnly<'a>(&'a LinearGaussian);
+/// A borrowed view of the problem, with or without its exact Hessian-vector product (without it, the
+/// products are finite differences of gradients).
+struct View<'a> {
+    problem: &'a LinearGaussian,
+    exact: bool,
+}
 
-impl Problem for GradientOnly<'_> {
+impl Problem for View<'_> {
     fn dim(&self) -> usize {
-        self.0.dim()
+        self.problem.dim()
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> Result<f64, EvalError> {
-        self.0.cost_grad(x, grad)
+        self.problem.cost_grad(x, grad)
+    }
+    fn has_hess_vec(&self) -> bool {
+        self.exact
+    }
+    fn hess_vec(&self, x: &[f64], v: &[f64], out: &mut [f64]) -> Result<(), EvalError> {
+        self.problem.hess_vec(x, v, out)
     }
     fn prior(&self) -> Option<&dyn Prior> {
-        self.0.prior()
+        self.problem.prior()
     }
 }
 
@@ -115,35 +125,17 @@ fn main() {
                 std::process::exit(2);
             }
         };
-        let exact = Counted::new(Exact(&problem));
-        let name = format!("sigma_o={sigma_o}, exact products");
-        ok &= case(&name, &exact, &reference.mean, &reference.variance);
-        let fd = Counted::new(GradientOnly(&problem));
-        let name = format!("sigma_o={sigma_o}, finite-difference products");
-        ok &= case(&name, &fd, &reference.mean, &reference.variance);
+        for exact in [true, false] {
+            let view = Counted::new(View {
+                problem: &problem,
+                exact,
+            });
+            let kind = if exact { "exact" } else { "finite-difference" };
+            let name = format!("sigma_o={sigma_o}, {kind} products");
+            ok &= case(&name, &view, &reference.mean, &reference.variance);
+        }
     }
     if !ok {
         std::process::exit(1);
-    }
-}
-
-/// The problem as it is, exact products included (a borrowed view, so both cases share one problem).
-struct Exact<'a>(&'a LinearGaussian);
-
-impl Problem for Exact<'_> {
-    fn dim(&self) -> usize {
-        self.0.dim()
-    }
-    fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> Result<f64, EvalError> {
-        self.0.cost_grad(x, grad)
-    }
-    fn has_hess_vec(&self) -> bool {
-        true
-    }
-    fn hess_vec(&self, x: &[f64], v: &[f64], out: &mut [f64]) -> Result<(), EvalError> {
-        self.0.hess_vec(x, v, out)
-    }
-    fn prior(&self) -> Option<&dyn Prior> {
-        self.0.prior()
     }
 }

@@ -673,6 +673,15 @@ mod tests {
             let g = DMatrix::from_fn(m, n, |_, _| rng.sample::<f64, _>(StandardNormal));
             let y = (0..m).map(|k| k as f64 * 0.1).collect();
             let r = (0..m).map(|k| 0.1 + 0.05 * k as f64).collect();
+            Quadratic::assemble(prior, binv, g, y, r)
+        }
+        fn assemble(
+            prior: Box<dyn Prior>,
+            binv: DMatrix<f64>,
+            g: DMatrix<f64>,
+            y: Vec<f64>,
+            r: Vec<f64>,
+        ) -> Self {
             Quadratic {
                 prior,
                 binv,
@@ -694,16 +703,7 @@ mod tests {
         ) -> Self {
             let binv = b.clone().try_inverse().unwrap();
             let prior = Box::new(DensePrior::new(xb, b).unwrap());
-            Quadratic {
-                prior,
-                binv,
-                g,
-                y,
-                r,
-                quartic: 0.0,
-                exact: true,
-                give_prior: true,
-            }
+            Quadratic::assemble(prior, binv, g, y, r)
         }
         /// Closed-form posterior covariance (B⁻¹ + Gᵀ R⁻¹ G)⁻¹ and mean, formed densely with nalgebra.
         fn posterior(&self) -> (DMatrix<f64>, Vec<f64>) {

@@ -391,16 +391,10 @@ impl Preconditioner for LbfgsPrecond<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::precond::test_support::{dense_of, gaussian, log_det_spd, rel};
     use crate::problem::{DiagonalPrior, Prior};
     use rand::SeedableRng;
     use rand_chacha::ChaCha8Rng;
-
-    fn gaussian(rng: &mut ChaCha8Rng, r: usize, c: usize) -> DMatrix<f64> {
-        use rand::RngExt;
-        DMatrix::from_fn(r, c, |_, _| {
-            rng.sample::<f64, _>(rand_distr::StandardNormal)
-        })
-    }
 
     /// Pairs (s, A s) for a random SPD A, plus one pair with negative curvature in the middle.
     fn pairs(seed: u64, n: usize, m: usize) -> Vec<(Vec<f64>, Vec<f64>)> {
@@ -435,41 +429,23 @@ mod tests {
         h
     }
 
-    fn matrix(
-        p: &dyn Preconditioner,
-        f: fn(&dyn Preconditioner, &[f64], &mut [f64]),
-    ) -> DMatrix<f64> {
-        let n = p.dim();
-        let mut m = DMatrix::zeros(n, n);
-        for j in 0..n {
-            let mut e = vec![0.0; n];
-            e[j] = 1.0;
-            f(p, &e, m.column_mut(j).as_mut_slice());
-        }
-        m
-    }
-
-    fn rel(a: &DMatrix<f64>, b: &DMatrix<f64>) -> f64 {
-        (a - b).norm() / b.norm()
-    }
-
     fn check(p: &dyn Preconditioner, h: &DMatrix<f64>, what: &str) {
-        let l = matrix(p, |p, u, o| p.mul_sqrt_cov(u, o));
+        let l = dense_of(p, |p, u, o| p.mul_sqrt_cov(u, o));
         assert!(
             rel(&(&l * l.transpose()), h) < 1e-10,
             "{what}: product form L Lᵀ vs dense BFGS"
         );
-        let lt = matrix(p, |p, u, o| p.mul_sqrt_cov_t(u, o));
+        let lt = dense_of(p, |p, u, o| p.mul_sqrt_cov_t(u, o));
         assert!(rel(&lt, &l.transpose()) < 1e-12, "{what}: Lᵀ");
-        let c = matrix(p, |p, u, o| p.mul_cov(u, o));
+        let c = dense_of(p, |p, u, o| p.mul_cov(u, o));
         assert!(rel(&c, h) < 1e-10, "{what}: compact form vs dense BFGS");
-        let linv = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
+        let linv = dense_of(p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
         let n = h.nrows();
         assert!(
             rel(&(&linv * &l), &DMatrix::identity(n, n)) < 1e-9,
             "{what}: L⁻¹ L"
         );
-        let lit = matrix(p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
+        let lit = dense_of(p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
         assert!(rel(&lit, &linv.transpose()) < 1e-9, "{what}: L⁻ᵀ");
         for (i, (a, b)) in p.variance().iter().zip(h.diagonal().iter()).enumerate() {
             assert!(
@@ -477,15 +453,7 @@ mod tests {
                 "{what}: variance {i}: {a} vs {b}"
             );
         }
-        let ld: f64 = h
-            .clone()
-            .cholesky()
-            .unwrap()
-            .l()
-            .diagonal()
-            .iter()
-            .map(|d| 2.0 * d.ln())
-            .sum();
+        let ld = log_det_spd(&h);
         assert!(
             (p.log_det_cov() - ld).abs() < 1e-8 * (1.0 + ld.abs()),
             "{what}: log det"

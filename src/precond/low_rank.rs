@@ -271,29 +271,10 @@ impl Preconditioner for LowRankPrecond<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::precond::test_support::{dense_of, gaussian, log_det_spd, rel};
     use crate::problem::DensePrior;
     use rand::{RngExt, SeedableRng};
     use rand_chacha::ChaCha8Rng;
-
-    fn gaussian(rng: &mut ChaCha8Rng, r: usize, c: usize) -> DMatrix<f64> {
-        DMatrix::from_fn(r, c, |_, _| {
-            rng.sample::<f64, _>(rand_distr::StandardNormal)
-        })
-    }
-
-    fn apply(
-        p: &dyn Preconditioner,
-        f: fn(&dyn Preconditioner, &[f64], &mut [f64]),
-    ) -> DMatrix<f64> {
-        let n = p.dim();
-        let mut m = DMatrix::zeros(n, n);
-        for j in 0..n {
-            let mut e = vec![0.0; n];
-            e[j] = 1.0;
-            f(p, &e, m.column_mut(j).as_mut_slice());
-        }
-        m
-    }
 
     /// A random instance: a dense SPD prior, orthonormal V and λ ≥ 0.
     fn instance(seed: u64, n: usize, r: usize) -> (DensePrior, DMatrix<f64>, Vec<f64>) {
@@ -304,11 +285,6 @@ mod tests {
         let v = gaussian(&mut rng, n, r).qr().q();
         let lambda = (0..r).map(|_| 10.0 * rng.random::<f64>()).collect();
         (prior, v, lambda)
-    }
-
-    /// Relative Frobenius distance.
-    fn rel(a: &DMatrix<f64>, b: &DMatrix<f64>) -> f64 {
-        (a - b).norm() / b.norm()
     }
 
     #[test]
@@ -332,8 +308,8 @@ mod tests {
                 + &v * DMatrix::from_diagonal(&lambda.clone().into()) * v.transpose();
             let h = sinv.transpose() * inner * &sinv;
             let c = h.clone().try_inverse().unwrap();
-            let l = apply(&p, |p, u, o| p.mul_sqrt_cov(u, o));
-            let lt = apply(&p, |p, u, o| p.mul_sqrt_cov_t(u, o));
+            let l = dense_of(&p, |p, u, o| p.mul_sqrt_cov(u, o));
+            let lt = dense_of(&p, |p, u, o| p.mul_sqrt_cov_t(u, o));
             assert!(
                 rel(&(&l * l.transpose()), &c) < 1e-10,
                 "seed {seed}: L Lᵀ ≠ C"
@@ -342,15 +318,15 @@ mod tests {
                 rel(&lt, &l.transpose()) < 1e-12,
                 "seed {seed}: Lᵀ is not the transpose of L"
             );
-            let linv = apply(&p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
-            let lit = apply(&p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
+            let linv = dense_of(&p, |p, u, o| assert!(p.solve_sqrt_cov(u, o)));
+            let lit = dense_of(&p, |p, u, o| assert!(p.solve_sqrt_cov_t(u, o)));
             assert!(
                 rel(&(&linv * &l), &DMatrix::identity(n, n)) < 1e-10,
                 "seed {seed}: L⁻¹ L ≠ I"
             );
             assert!(rel(&lit, &linv.transpose()) < 1e-10, "seed {seed}: L⁻ᵀ");
-            assert!(rel(&apply(&p, |p, u, o| p.mul_cov(u, o)), &c) < 1e-10);
-            assert!(rel(&apply(&p, |p, u, o| assert!(p.mul_hess(u, o))), &h) < 1e-10);
+            assert!(rel(&dense_of(&p, |p, u, o| p.mul_cov(u, o)), &c) < 1e-10);
+            assert!(rel(&dense_of(&p, |p, u, o| assert!(p.mul_hess(u, o))), &h) < 1e-10);
             let dv: Vec<f64> = c.diagonal().iter().copied().collect();
             for (a, b) in p.variance().iter().zip(&dv) {
                 assert!(
@@ -358,15 +334,7 @@ mod tests {
                     "seed {seed}: variance {a} vs {b}"
                 );
             }
-            let ld = c
-                .clone()
-                .cholesky()
-                .unwrap()
-                .l()
-                .diagonal()
-                .iter()
-                .map(|d| 2.0 * d.ln())
-                .sum::<f64>();
+            let ld = log_det_spd(&c);
             assert!(
                 (p.log_det_cov() - ld).abs() < 1e-9 * (1.0 + ld.abs()),
                 "seed {seed}: log det"
@@ -386,7 +354,7 @@ mod tests {
             + &v * DMatrix::from_diagonal(&lambda.into()) * v.transpose())
         .try_inverse()
         .unwrap();
-        let l = apply(&p, |p, u, o| p.mul_sqrt_cov(u, o));
+        let l = dense_of(&p, |p, u, o| p.mul_sqrt_cov(u, o));
         assert!(rel(&(&l * l.transpose()), &c) < 1e-12);
         for (a, b) in p.variance().iter().zip(c.diagonal().iter()) {
             assert!((a - b).abs() < 1e-12);

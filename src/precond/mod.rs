@@ -12,6 +12,8 @@ pub mod diagonal;
 pub mod identity;
 pub mod lbfgs;
 pub mod low_rank;
+#[cfg(test)]
+mod test_support;
 
 pub use build::{laplace, Laplace, LaplaceMethod, LaplaceOptions, SpectrumOf};
 pub use dense::DensePrecond;
