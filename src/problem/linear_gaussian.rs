@@ -191,6 +191,27 @@ impl LinearGaussian {
         &self.truth
     }
 
+    /// The problem's matrices and data, for checking the closed form against an outside reference:
+    /// `a` (m × r, row-major), `c` (r × n, row-major), `b` = diag(B), `r` = diag(R), `y`, `xb`.
+    pub fn export(&self) -> serde_json::Value {
+        let rows = |m: &DMatrix<f64>| -> Vec<Vec<f64>> {
+            (0..m.nrows())
+                .map(|i| m.row(i).iter().copied().collect())
+                .collect()
+        };
+        serde_json::json!({
+            "n": self.config.n,
+            "m": self.config.m,
+            "rank": self.config.rank,
+            "a": rows(&self.a),
+            "c": rows(&self.c),
+            "b": self.prior.variance(),
+            "r": self.r_inv.iter().map(|v| 1.0 / v).collect::<Vec<_>>(),
+            "y": self.y,
+            "xb": self.prior.mean(),
+        })
+    }
+
     fn forward(&self, x: &[f64]) -> DVector<f64> {
         &self.a * (&self.c * DVector::from_column_slice(x))
     }

@@ -500,6 +500,13 @@ impl Scenario {
     /// Reads a scenario from a folder holding scenario.json, background.csv, observations.csv and
     /// optionally truth.csv.
     pub fn read(dir: &Path) -> Result<Self> {
+        if !dir.is_dir() {
+            return Err(Error::Config(format!(
+                "scenario folder {} does not exist; it must hold scenario.json, background.csv and \
+                 observations.csv (see demo-data/README.md, or write one with `varpost synth --out DIR`)",
+                dir.display()
+            )));
+        }
         let read = |name: &str| -> Result<String> {
             let p = dir.join(name);
             std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))
