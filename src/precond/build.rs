@@ -230,8 +230,9 @@ pub fn laplace<'a, P: Problem + ?Sized>(
             let prior = problem.prior().ok_or_else(|| {
                 Error::Config(
                     "the low-rank Hessian needs the background-error covariance B: let the problem \
-                     return it from Problem::prior (e.g. a DiagonalPrior or DensePrior), or choose the \
-                     dense, lbfgs or diagonal method"
+                     return it from Problem::prior (e.g. a DiagonalPrior or DensePrior; for a cost \
+                     written in the control variable, the prior N(0, I)), or choose the dense, lbfgs \
+                     or diagonal method"
                         .into(),
                 )
             })?;
