@@ -39,6 +39,39 @@ pub struct CheckSummary {
     pub fd_max_rel_error: Option<f64>,
 }
 
+/// The Laplace approximation at the analysis (the inverse Hessian there), as reported.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct LaplaceSummary {
+    /// "dense", "low-rank", "lbfgs" or "diagonal".
+    pub method: String,
+    /// Rank of the low-rank update of the prior (low-rank method only).
+    pub rank: Option<usize>,
+    /// diag of the Laplace covariance: the analysis-error variances.
+    pub variance: Vec<f64>,
+    /// log det of the Laplace covariance.
+    pub log_det_cov: f64,
+    /// Leading eigenvalues, descending, of `spectrum_of`.
+    pub eigenvalues: Vec<f64>,
+    /// "prior-preconditioned-misfit" (Sᵀ ∇²J S − I with B = S Sᵀ) or "hessian".
+    pub spectrum_of: Option<String>,
+    /// File (in the output folder) holding the matching eigen-directions in model space, one per column.
+    pub eigenvectors_file: Option<String>,
+    /// Hessian-vector products formed (exact, or two gradients each).
+    pub products: usize,
+    /// Whether the products were the problem's own.
+    pub exact_products: bool,
+    /// Dense method: relative asymmetry of the estimated Hessian before symmetrising.
+    pub asymmetry: Option<f64>,
+    /// Low-rank method: estimate of the first discarded eigenvalue.
+    pub next_eigenvalue: Option<f64>,
+    /// Low-rank method: the maximum rank was reached with eigenvalues still above the threshold.
+    pub rank_truncated: bool,
+    /// L-BFGS method: pairs skipped for failing the curvature condition.
+    pub pairs_skipped: usize,
+    /// Evaluations spent on the Hessian alone.
+    pub evaluations: EvalCounts,
+}
+
 /// The closed-form posterior, where the problem has one.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ReferenceSummary {
@@ -61,6 +94,8 @@ pub struct Summary {
     pub check: Option<CheckSummary>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub map: Option<MapSummary>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub laplace: Option<LaplaceSummary>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub reference: Option<ReferenceSummary>,
     /// The background state and its error variances, where the problem gives its prior.
