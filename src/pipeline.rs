@@ -9,7 +9,7 @@ use crate::error::{Error, Result};
 use crate::optimize::{find_map, MapConfig, MapResult};
 use crate::output::summary::{CheckSummary, LaplaceSummary, MapSummary, ReferenceSummary};
 use crate::output::{table, Summary};
-use crate::precond::{laplace, Laplace, LaplaceOptions, SpectrumOf};
+use crate::precond::{laplace, Laplace, LaplaceOptions};
 use crate::problem::builtin::{self, Builtin};
 use crate::problem::check::{gradient_test, GradientReport};
 use crate::problem::settings::Settings;
@@ -300,23 +300,13 @@ fn laplace_summary(
         _ => None,
     };
     Ok(LaplaceSummary {
-        method: lap.method.as_str().into(),
+        method: lap.method,
         rank: lap.rank,
         variance: lap.variance.clone(),
         log_det_cov: lap.precond.log_det_cov(),
         eigenvalues: lap.eigenvalues.clone(),
-        spectrum_of: lap.spectrum_of.map(|s| match s {
-            SpectrumOf::PriorPreconditionedMisfit => "prior-preconditioned-misfit".to_string(),
-            SpectrumOf::Hessian => "hessian".to_string(),
-        }),
         eigenvectors_file,
-        products: lap.products,
-        exact_products: lap.exact_products,
-        asymmetry: lap.asymmetry,
-        next_eigenvalue: lap.next_eigenvalue,
-        rank_truncated: lap.rank_truncated,
-        pairs_skipped: lap.pairs_skipped,
-        evaluations: lap.evaluations,
+        info: lap.info.clone(),
     })
 }
 

@@ -40,15 +40,20 @@ fn linear_gaussian_dense_and_low_rank_match_the_closed_form() {
         let l = laplace(&problem, &reference.mean, &[], &forced(method)).unwrap();
         let err = max_rel(&l.variance, &reference.variance);
         assert!(err < 1e-6, "{method:?}: variance error {err:.2e}");
-        assert_eq!(l.spectrum_of, Some(SpectrumOf::PriorPreconditionedMisfit));
+        assert_eq!(
+            l.info.spectrum_of,
+            Some(SpectrumOf::PriorPreconditionedMisfit)
+        );
         if method == LaplaceMethod::LowRank {
             // rank(G) = 25, and each of its eigenvalues is above the 0.1 threshold here.
             assert_eq!(l.rank, Some(25), "eigenvalues {:?}", l.eigenvalues);
-            assert!(l.exact_products && l.evaluations.hessvec as usize == l.products);
             assert!(
-                l.products < 300,
+                l.info.exact_products && l.info.evaluations.hessvec as usize == l.info.products
+            );
+            assert!(
+                l.info.products < 300,
                 "{} products for a rank-25 update",
-                l.products
+                l.info.products
             );
         }
     }
@@ -68,7 +73,7 @@ fn lorenz96_hessian_at_the_analysis() {
     // Symmetric to finite-difference accuracy: central differences of adjoint gradients with step
     // h ≈ ε^{1/3} have relative error of order ε^{2/3} ≈ 4e-11 times the third-derivative scale
     // (common practice, no source); 1e-6 leaves ample room.
-    let asym = dense.asymmetry.unwrap();
+    let asym = dense.info.asymmetry.unwrap();
     assert!(asym < 1e-6, "asymmetry {asym:.2e}");
     // Positive definite: the Cholesky factorisation succeeded and every variance is positive.
     assert!(dense.variance.iter().all(|v| *v > 0.0));
@@ -106,6 +111,9 @@ fn lorenz96_hessian_at_the_analysis() {
 
     // The L-BFGS metric from the minimiser's pairs costs no evaluations.
     let lb = laplace(&problem, &map.x, &map.pairs, &forced(LaplaceMethod::Lbfgs)).unwrap();
-    assert_eq!(lb.evaluations.gradient + lb.evaluations.hessvec, 0);
+    assert_eq!(
+        lb.info.evaluations.gradient + lb.info.evaluations.hessvec,
+        0
+    );
     assert!(lb.variance.iter().all(|v| *v > 0.0 && v.is_finite()));
 }

@@ -8,7 +8,7 @@ use clap::{Args, Parser, Subcommand};
 use crate::error::{Error, Result};
 use crate::optimize::MapConfig;
 use crate::pipeline::{self, CheckConfig, HessianRunConfig, MapRunConfig, ProblemSource};
-use crate::precond::{LaplaceMethod, LaplaceOptions};
+use crate::precond::{LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::problem::lorenz96::{Lorenz96Config, Scenario};
 use crate::problem::settings::Settings;
 use crate::problem::Problem;
@@ -357,7 +357,7 @@ fn print_map(m: &crate::optimize::MapResult) {
 
 fn print_laplace(l: &crate::output::summary::LaplaceSummary) {
     let rank = l.rank.map(|r| format!(", rank {r}")).unwrap_or_default();
-    let products = match (l.products, l.exact_products) {
+    let products = match (l.info.products, l.info.exact_products) {
         (0, _) => "no extra evaluations".to_string(),
         (k, true) => format!("{k} exact Hessian-vector products"),
         (k, false) => format!("{k} Hessian-vector products by differences of gradients"),
@@ -374,18 +374,21 @@ fn print_laplace(l: &crate::output::summary::LaplaceSummary) {
             .map(|v| format!("{v:.4e}"))
             .collect();
         println!(
-            "  leading eigenvalues ({}): {}",
-            l.spectrum_of.as_deref().unwrap_or("?"),
+            "  leading eigenvalues {}: {}",
+            match l.info.spectrum_of {
+                Some(SpectrumOf::Hessian) => "of the Hessian",
+                _ => "of the prior-preconditioned misfit Hessian",
+            },
             lead.join(", ")
         );
     }
-    if l.rank_truncated {
+    if l.info.rank_truncated {
         println!("  the maximum rank was reached with eigenvalues still above the threshold: raise --max-rank");
     }
-    if l.pairs_skipped > 0 {
+    if l.info.pairs_skipped > 0 {
         println!(
             "  {} L-BFGS pairs skipped (curvature condition)",
-            l.pairs_skipped
+            l.info.pairs_skipped
         );
     }
     let (lo, hi) = l

@@ -4,6 +4,7 @@ use std::path::Path;
 
 use super::write_atomic;
 use crate::error::{Error, Result};
+use crate::precond::{LaplaceInfo, LaplaceMethod};
 use crate::problem::EvalCounts;
 
 /// The caution every output carries.
@@ -43,7 +44,7 @@ pub struct CheckSummary {
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct LaplaceSummary {
     /// "dense", "low-rank", "lbfgs" or "diagonal".
-    pub method: String,
+    pub method: LaplaceMethod,
     /// Rank of the low-rank update of the prior (low-rank method only).
     pub rank: Option<usize>,
     /// diag of the Laplace covariance: the analysis-error variances.
@@ -52,24 +53,11 @@ pub struct LaplaceSummary {
     pub log_det_cov: f64,
     /// Leading eigenvalues, descending, of `spectrum_of`.
     pub eigenvalues: Vec<f64>,
-    /// "prior-preconditioned-misfit" (Sᵀ ∇²J S − I with B = S Sᵀ) or "hessian".
-    pub spectrum_of: Option<String>,
     /// File (in the output folder) holding the matching eigen-directions in model space, one per column.
     pub eigenvectors_file: Option<String>,
-    /// Hessian-vector products formed (exact, or two gradients each).
-    pub products: usize,
-    /// Whether the products were the problem's own.
-    pub exact_products: bool,
-    /// Dense method: relative asymmetry of the estimated Hessian before symmetrising.
-    pub asymmetry: Option<f64>,
-    /// Low-rank method: estimate of the first discarded eigenvalue.
-    pub next_eigenvalue: Option<f64>,
-    /// Low-rank method: the maximum rank was reached with eigenvalues still above the threshold.
-    pub rank_truncated: bool,
-    /// L-BFGS method: pairs skipped for failing the curvature condition.
-    pub pairs_skipped: usize,
-    /// Evaluations spent on the Hessian alone.
-    pub evaluations: EvalCounts,
+    /// What the spectrum is of, the cost, and accuracy indicators.
+    #[serde(flatten)]
+    pub info: LaplaceInfo,
 }
 
 /// The closed-form posterior, where the problem has one.

@@ -66,6 +66,12 @@ impl LaplaceMethod {
     }
 }
 
+impl std::fmt::Display for LaplaceMethod {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
 impl std::str::FromStr for LaplaceMethod {
     type Err = Error;
     fn from_str(s: &str) -> Result<Self> {
@@ -154,12 +160,18 @@ pub struct Laplace<'a> {
     /// The matching eigen-directions in model space, one per column: S v_i for the prior-preconditioned
     /// spectrum (B⁻¹-orthonormal), the orthonormal eigenvectors of ∇²J for the Hessian spectrum.
     pub eigenvectors: Option<DMatrix<f64>>,
-    /// What `eigenvalues` are eigenvalues of.
-    pub spectrum_of: Option<SpectrumOf>,
     /// The Gaussian metric N(x*, C), L Lᵀ = C.
     pub precond: Box<dyn Preconditioner + 'a>,
-    /// Evaluations spent building it (from the problem's [`Counted`] wrapper).
-    pub evaluations: EvalCounts,
+    /// How it was obtained.
+    pub info: LaplaceInfo,
+}
+
+/// How a Laplace approximation was obtained: what its spectrum is of, its cost, and its accuracy
+/// indicators.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct LaplaceInfo {
+    /// What the eigenvalues are eigenvalues of.
+    pub spectrum_of: Option<SpectrumOf>,
     /// Hessian-vector products formed (each an exact product or two gradients).
     pub products: usize,
     /// Whether the products were the problem's own (`hess_vec`) rather than finite differences.
@@ -173,6 +185,8 @@ pub struct Laplace<'a> {
     pub rank_truncated: bool,
     /// L-BFGS method: pairs skipped for failing the curvature condition.
     pub pairs_skipped: usize,
+    /// Evaluations spent building it (from the problem's [`Counted`] wrapper).
+    pub evaluations: EvalCounts,
 }
 
 /// Estimates the Hessian at the analysis `x_map` and returns the Laplace approximation there.
@@ -247,14 +261,14 @@ pub fn laplace<'a, P: Problem + ?Sized>(
             };
             let skipped = p.pairs_skipped();
             let mut l = Laplace::from_precond(LaplaceMethod::Lbfgs, Box::new(p));
-            l.pairs_skipped = skipped;
+            l.info.pairs_skipped = skipped;
             l
         }
         LaplaceMethod::Diagonal => diagonal(&op, opts)?,
     };
-    out.evaluations = problem.counts().since(&start);
-    out.products = op.products.load(Ordering::Relaxed);
-    out.exact_products = op.exact;
+    out.info.evaluations = problem.counts().since(&start);
+    out.info.products = op.products.load(Ordering::Relaxed);
+    out.info.exact_products = op.exact && out.info.products > 0;
     Ok(out)
 }
 
@@ -266,15 +280,8 @@ impl<'a> Laplace<'a> {
             variance: precond.variance(),
             eigenvalues: Vec::new(),
             eigenvectors: None,
-            spectrum_of: None,
             precond,
-            evaluations: EvalCounts::default(),
-            products: 0,
-            exact_products: false,
-            asymmetry: None,
-            next_eigenvalue: None,
-            rank_truncated: false,
-            pairs_skipped: 0,
+            info: LaplaceInfo::default(),
         }
     }
 }
@@ -421,8 +428,8 @@ fn dense<'a, P: Problem + ?Sized>(
     let mut l = Laplace::from_precond(LaplaceMethod::Dense, Box::new(precond));
     l.eigenvalues = values[..k].to_vec();
     l.eigenvectors = Some(vectors);
-    l.spectrum_of = Some(of);
-    l.asymmetry = Some(asym);
+    l.info.spectrum_of = Some(of);
+    l.info.asymmetry = Some(asym);
     Ok(l)
 }
 
@@ -600,9 +607,9 @@ fn low_rank<'a, P: Problem + ?Sized>(
     l.rank = Some(r);
     l.eigenvalues = lambda;
     l.eigenvectors = Some(vectors);
-    l.spectrum_of = Some(SpectrumOf::PriorPreconditionedMisfit);
-    l.next_eigenvalue = next_eigenvalue;
-    l.rank_truncated = rank_truncated;
+    l.info.spectrum_of = Some(SpectrumOf::PriorPreconditionedMisfit);
+    l.info.next_eigenvalue = next_eigenvalue;
+    l.info.rank_truncated = rank_truncated;
     Ok(l)
 }
 
@@ -788,7 +795,7 @@ mod tests {
             for method in [LaplaceMethod::Dense, LaplaceMethod::LowRank] {
                 let l = laplace(&p, &mean, &[], &opts(method)).unwrap();
                 assert_eq!(l.method, method);
-                assert_eq!(l.exact_products, exact);
+                assert_eq!(l.info.exact_products, exact);
                 assert_rel(
                     &l.variance,
                     &truth,
@@ -800,9 +807,9 @@ mod tests {
                 l.precond.mul_cov(&e0, &mut out);
                 assert_rel(&out, c.column(0).as_slice(), 1e-6, "first column of C");
                 if exact {
-                    assert_eq!(l.evaluations.hessvec as usize, l.products);
+                    assert_eq!(l.info.evaluations.hessvec as usize, l.info.products);
                 } else {
-                    assert_eq!(l.evaluations.gradient as usize, 2 * l.products);
+                    assert_eq!(l.info.evaluations.gradient as usize, 2 * l.info.products);
                 }
             }
             let lr = laplace(&p, &mean, &[], &opts(LaplaceMethod::LowRank)).unwrap();
@@ -833,7 +840,7 @@ mod tests {
         };
         let l = laplace(&p, &mean, &[], &o).unwrap();
         assert_eq!(l.rank, Some(120));
-        assert!(!l.rank_truncated);
+        assert!(!l.info.rank_truncated);
         assert_rel(&l.variance, &truth, 1e-6, "grown sketch");
         // A maximum rank below the misfit rank is reported as truncation.
         let o = LaplaceOptions {
@@ -842,7 +849,7 @@ mod tests {
         };
         let l = laplace(&p, &mean, &[], &o).unwrap();
         assert_eq!(l.rank, Some(40));
-        assert!(l.rank_truncated);
+        assert!(l.info.rank_truncated);
     }
 
     #[test]
@@ -860,7 +867,7 @@ mod tests {
         let reference = finitediff::vec::central_hessian(&grad)(&x).unwrap();
         let p = Counted::new(q);
         let l = laplace(&p, &x, &[], &opts(LaplaceMethod::Dense)).unwrap();
-        assert!(l.asymmetry.unwrap() < 1e-8);
+        assert!(l.info.asymmetry.unwrap() < 1e-8);
         let h = DMatrix::from_fn(8, 8, |r, c| reference[r][c]);
         let c = h.try_inverse().unwrap();
         assert_rel(
@@ -915,7 +922,7 @@ mod tests {
         )
         .unwrap();
         assert_eq!(l.method, LaplaceMethod::Lbfgs);
-        assert_eq!(l.evaluations.gradient, 0);
+        assert_eq!(l.info.evaluations.gradient, 0);
         assert_rel(&l.variance, &b, 1e-10, "lbfgs");
     }
 

@@ -15,7 +15,7 @@ pub mod low_rank;
 #[cfg(test)]
 mod test_support;
 
-pub use build::{laplace, Laplace, LaplaceMethod, LaplaceOptions, SpectrumOf};
+pub use build::{laplace, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf};
 pub use dense::DensePrecond;
 pub use diagonal::DiagonalPrecond;
 pub use identity::IdentityPrecond;
