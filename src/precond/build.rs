@@ -189,6 +189,9 @@ pub struct LaplaceInfo {
     pub evaluations: EvalCounts,
 }
 
+/// Largest dimension for the dense method (a handful of n×n matrices of 200 MB each at this size).
+pub const DENSE_LIMIT: usize = 5000;
+
 /// Estimates the Hessian at the analysis `x_map` and returns the Laplace approximation there.
 ///
 /// `pairs` are the minimiser's L-BFGS pairs (s_k, y_k), oldest first (may be empty unless the L-BFGS
@@ -200,6 +203,9 @@ pub fn laplace<'a, P: Problem + ?Sized>(
     opts: &LaplaceOptions,
 ) -> Result<Laplace<'a>> {
     let n = problem.dim();
+    if n == 0 {
+        return Err(Error::Config("the problem has dimension 0".into()));
+    }
     if x_map.len() != n {
         return Err(Error::Config(format!(
             "the analysis has {} components but the problem has dimension {n}",
@@ -236,6 +242,13 @@ pub fn laplace<'a, P: Problem + ?Sized>(
     } else {
         LaplaceMethod::Diagonal
     });
+    if method == LaplaceMethod::Dense && n > DENSE_LIMIT {
+        return Err(Error::Config(format!(
+            "the dense Hessian of dimension {n} needs several {n}×{n} matrices ({:.1} GB each); above \
+             n = {DENSE_LIMIT} use the low-rank, lbfgs or diagonal method",
+            (n * n) as f64 * 8e-9
+        )));
+    }
     let start = problem.counts();
     let op = HessOp::new(problem, x_map, opts.fd_step)?;
     let mut out = match method {
@@ -984,6 +997,35 @@ mod tests {
             }
             Ok(0.0)
         }
+    }
+
+    /// J(x) = ½ |x|² in dimension n.
+    struct Isotropic(usize);
+    impl Problem for Isotropic {
+        fn dim(&self) -> usize {
+            self.0
+        }
+        fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
+            grad.copy_from_slice(x);
+            Ok(0.5 * x.iter().map(|v| v * v).sum::<f64>())
+        }
+    }
+
+    #[test]
+    fn a_dense_hessian_too_large_is_refused_before_any_evaluation() {
+        let p = Counted::new(Isotropic(DENSE_LIMIT + 1));
+        let x = vec![0.0; DENSE_LIMIT + 1];
+        let e = laplace(&p, &x, &[], &opts(LaplaceMethod::Dense))
+            .err()
+            .unwrap()
+            .to_string();
+        assert!(e.contains("low-rank, lbfgs or diagonal"), "{e}");
+        assert_eq!(p.counts().gradient, 0);
+        // The automatic choice goes to the diagonal here (no prior, no pairs); H = I exactly, so the
+        // probing estimate is exact (Bekas, Kokiopoulou & Saad 2007: exact for diagonal matrices).
+        let l = laplace(&p, &x, &[], &LaplaceOptions::default()).unwrap();
+        assert_eq!(l.method, LaplaceMethod::Diagonal);
+        assert!(l.variance.iter().all(|v| (v - 1.0).abs() < 1e-9));
     }
 
     #[test]

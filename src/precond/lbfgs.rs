@@ -453,7 +453,7 @@ mod tests {
                 "{what}: variance {i}: {a} vs {b}"
             );
         }
-        let ld = log_det_spd(&h);
+        let ld = log_det_spd(h);
         assert!(
             (p.log_det_cov() - ld).abs() < 1e-8 * (1.0 + ld.abs()),
             "{what}: log det"
