@@ -38,7 +38,7 @@ pub struct Target<'a> {
     problem: &'a dyn CountedProblem,
     name: String,
     x_star: Vec<f64>,
-    precond: Arc<dyn Preconditioner>,
+    precond: Arc<dyn Preconditioner + 'a>,
 }
 
 impl<'a> Target<'a> {
@@ -48,7 +48,7 @@ impl<'a> Target<'a> {
         problem: &'a dyn CountedProblem,
         name: impl Into<String>,
         x_star: Vec<f64>,
-        precond: Arc<dyn Preconditioner>,
+        precond: Arc<dyn Preconditioner + 'a>,
     ) -> Result<Self> {
         let n = problem.dim();
         if n == 0 {
