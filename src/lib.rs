@@ -8,6 +8,7 @@ pub mod adapt;
 pub mod cli;
 pub mod diagnostics;
 pub mod error;
+pub mod hash;
 pub mod interrupt;
 pub mod optimize;
 pub mod output;

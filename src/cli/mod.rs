@@ -6,12 +6,16 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand};
 
 use crate::error::{Error, Result};
+use crate::interrupt::Interrupt;
 use crate::optimize::MapConfig;
-use crate::pipeline::{self, CheckConfig, HessianRunConfig, MapRunConfig, ProblemSource};
+use crate::pipeline::{
+    self, CheckConfig, HessianRunConfig, MapRunConfig, Metric, ProblemSource, SampleRunConfig,
+};
 use crate::precond::{LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::problem::lorenz96::{Lorenz96Config, Scenario};
 use crate::problem::settings::Settings;
 use crate::problem::Problem;
+use crate::sampler::{KernelKind, SampleConfig};
 
 /// Posterior uncertainty for strong-constraint 4D-Var: gradient check, L-BFGS analysis, Hessian at the
 /// analysis, and preconditioned MCMC ensembles with convergence diagnostics.
@@ -57,6 +61,23 @@ pub enum Command {
         #[command(flatten)]
         hessian: HessianArgs,
     },
+    /// The whole pipeline: gradient check, analysis, Hessian, Laplace check, then MCMC chains and
+    /// their diagnostics.
+    Sample {
+        #[command(flatten)]
+        problem: ProblemArgs,
+        #[command(flatten)]
+        lbfgs: LbfgsArgs,
+        #[command(flatten)]
+        hessian: HessianArgs,
+        #[command(flatten)]
+        chains: ChainArgs,
+    },
+    /// Continue a sampling run from its folder (after a crash, a kill or a wall-clock limit).
+    Resume {
+        /// The run's output folder.
+        dir: PathBuf,
+    },
     /// Write a synthetic scenario of a built-in problem (truth, background, observations) to a folder.
     Synth {
         /// The built-in problem (only lorenz96 has scenario files).
@@ -83,6 +104,75 @@ pub struct ProblemArgs {
     /// Output folder (created if missing).
     #[arg(long)]
     pub out: PathBuf,
+}
+
+/// Settings of the chains.
+#[derive(Debug, Args)]
+pub struct ChainArgs {
+    /// Sampler kernel: hmc, mala or laplace-mh.
+    #[arg(long, default_value = "hmc")]
+    pub kernel: String,
+    /// Metric (preconditioner) of the chains: laplace (the Hessian approximation above), identity,
+    /// diagonal, dense, low-rank or lbfgs.
+    #[arg(long, default_value = "laplace")]
+    pub metric: String,
+    /// Number of chains.
+    #[arg(long, default_value_t = SampleConfig::default().chains)]
+    pub chains: usize,
+    /// Draws kept per chain.
+    #[arg(long, default_value_t = SampleConfig::default().draws)]
+    pub draws: u64,
+    /// Warm-up iterations per chain (discarded).
+    #[arg(long, default_value_t = SampleConfig::default().warmup)]
+    pub warmup: u64,
+    /// Seed of every random stream (chain c uses stream c).
+    #[arg(long, default_value_t = SampleConfig::default().seed)]
+    pub seed: u64,
+    /// Keep one draw in this many iterations.
+    #[arg(long, default_value_t = SampleConfig::default().thin)]
+    pub thin: u64,
+    /// Write a checkpoint every this many iterations.
+    #[arg(long, default_value_t = SampleConfig::default().checkpoint_every)]
+    pub checkpoint_every: u64,
+    /// Target acceptance of the step-size adaptation (default: 0.574 for MALA, 0.651 for HMC).
+    #[arg(long)]
+    pub target_accept: Option<f64>,
+    /// HMC integration time in whitened units.
+    #[arg(long, default_value_t = SampleConfig::default().hmc_time)]
+    pub hmc_time: f64,
+    /// Laplace-MH: degrees of freedom of a Student-t proposal (default: the Laplace Gaussian).
+    #[arg(long)]
+    pub t_dof: Option<f64>,
+    /// Refine the metric during the warm-up from the warm-up draws (diagonal, MALA and HMC).
+    #[arg(long)]
+    pub adapt_metric: bool,
+    /// Laplace draws for the check of how far the Gaussian approximation holds (0 skips it).
+    #[arg(long, default_value_t = 200)]
+    pub laplace_draws: usize,
+    /// Skip the gradient test at the start.
+    #[arg(long)]
+    pub skip_check: bool,
+}
+
+impl ChainArgs {
+    fn config(&self) -> Result<(SampleConfig, Metric)> {
+        let c = SampleConfig {
+            kernel: self.kernel.parse::<KernelKind>()?,
+            chains: self.chains,
+            draws: self.draws,
+            warmup: self.warmup,
+            seed: self.seed,
+            thin: self.thin,
+            checkpoint_every: self.checkpoint_every,
+            target_accept: self.target_accept,
+            hmc_time: self.hmc_time,
+            t_dof: self.t_dof,
+            adapt_metric: self.adapt_metric,
+            ..Default::default()
+        };
+        c.validate()?;
+        Ok((c, self.metric.parse::<Metric>()?))
+    }
 }
 
 /// L-BFGS settings.
@@ -290,6 +380,39 @@ pub fn run(cli: Cli) -> Result<i32> {
             );
             Ok(if m.converged { 0 } else { 4 })
         }
+        Command::Sample {
+            problem,
+            lbfgs,
+            hessian,
+            chains,
+        } => {
+            let map = lbfgs.config()?;
+            let (sampler, metric) = chains.config()?;
+            let cfg = SampleRunConfig {
+                source: problem.source()?,
+                start: map.start.clone(),
+                lbfgs: map.lbfgs,
+                laplace: hessian.options()?,
+                metric,
+                sampler,
+                laplace_draws: chains.laplace_draws,
+                check_seed: 1,
+                skip_check: chains.skip_check,
+            };
+            let loaded = pipeline::load(&cfg.source)?;
+            println!(
+                "sampling: {} (n = {})",
+                loaded.description,
+                loaded.problem.dim()
+            );
+            sample(&loaded, &cfg, &problem.out, false)
+        }
+        Command::Resume { dir } => {
+            let cfg = pipeline::read_run(&dir)?;
+            println!("resuming the run in {}", dir.display());
+            let loaded = pipeline::load(&cfg.source)?;
+            sample(&loaded, &cfg, &dir, true)
+        }
         Command::Synth { problem, set, out } => {
             if problem != "lorenz96" {
                 return Err(Error::Config(format!(
@@ -308,6 +431,86 @@ pub fn run(cli: Cli) -> Result<i32> {
             Ok(0)
         }
     }
+}
+
+fn sample(
+    loaded: &pipeline::Loaded,
+    cfg: &SampleRunConfig,
+    out: &std::path::Path,
+    resume: bool,
+) -> Result<i32> {
+    let interrupt = Interrupt::from_signals()?;
+    let progress = |_c: usize, _d: u64, _t: u64| {};
+    let o = pipeline::run_sample(loaded, cfg, out, resume, &interrupt, &progress)?;
+    print_sample(&o);
+    println!("output: {}", out.display());
+    Ok(
+        if o.summary.diagnostics.as_ref().is_some_and(|d| d.converged) {
+            0
+        } else {
+            5
+        },
+    )
+}
+
+fn print_sample(o: &pipeline::SampleOutcome) {
+    let s = &o.summary;
+    if let Some(m) = &s.map {
+        println!(
+            "  analysis: cost {:.6e} -> {:.6e} in {} iterations{}",
+            m.cost_start,
+            m.cost,
+            m.iterations,
+            if m.converged { "" } else { " (NOT converged)" }
+        );
+    }
+    if let Some(l) = &s.laplace {
+        println!(
+            "  Laplace covariance: {} ({} Hessian-vector products)",
+            l.method, l.info.products
+        );
+    }
+    if let Some(c) = &s.laplace_check {
+        println!(
+            "  Laplace check: k-hat {:.2} (reliable below {:.2}), Kish ESS {:.0} of {} draws",
+            c.khat, c.khat_threshold, c.kish_ess, c.draws
+        );
+    }
+    if let (Some(sm), Some(ch)) = (&s.sampling, &s.chains) {
+        println!(
+            "  {} chains of {} draws, kernel {}, metric {}",
+            sm.chains, sm.draws_per_chain, sm.kernel, sm.metric
+        );
+        for c in ch {
+            println!(
+                "    chain {}: acceptance {:.3}, step size {}, divergences {}, rejected (non-finite) {}",
+                c.chain,
+                c.acceptance,
+                c.step_size.map_or("-".into(), |v| format!("{v:.3}")),
+                c.divergences,
+                c.rejected_nonfinite
+            );
+        }
+    }
+    if let Some(d) = &s.diagnostics {
+        println!(
+            "  R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
+            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
+        );
+        println!("  {}", d.verdict);
+    }
+    let by = &s.evaluations_by_stage;
+    let runs = |k: &str| by.get(k).map_or(0, |c| c.model_runs());
+    println!(
+        "evaluations: {} in all (check {}, analysis {}, Hessian {}, Laplace check {}, warm-up {}, sampling {})",
+        s.evaluations.model_runs(),
+        runs("check"),
+        runs("map"),
+        runs("hessian"),
+        runs("laplace_check"),
+        runs("warmup"),
+        runs("sampling")
+    );
 }
 
 fn rel_err(a: &[f64], b: &[f64]) -> f64 {

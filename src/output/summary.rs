@@ -67,6 +67,96 @@ pub struct ReferenceSummary {
     pub variance: Vec<f64>,
 }
 
+/// The posterior ensemble, per component.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct PosteriorSummary {
+    /// Kept draws over all chains.
+    pub draws: u64,
+    pub mean: Vec<f64>,
+    pub variance: Vec<f64>,
+    /// Monte Carlo standard error of the mean.
+    pub mcse_mean: Vec<f64>,
+    /// Monte Carlo standard error of the standard deviation.
+    pub mcse_sd: Vec<f64>,
+    pub ess_bulk: Vec<f64>,
+    pub ess_tail: Vec<f64>,
+    /// Rank-normalised split R-hat.
+    pub rhat: Vec<f64>,
+    /// 5% and 95% quantiles and their Monte Carlo standard errors.
+    pub q05: Vec<f64>,
+    pub q95: Vec<f64>,
+    pub mcse_q05: Vec<f64>,
+    pub mcse_q95: Vec<f64>,
+}
+
+/// One chain, as reported.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct ChainReport {
+    pub chain: usize,
+    /// Mean acceptance probability while sampling, and during the warm-up.
+    pub acceptance: f64,
+    pub warmup_acceptance: f64,
+    /// The adapted step size (whitened units), for kernels that have one.
+    pub step_size: Option<f64>,
+    pub divergences: u64,
+    pub rejected_nonfinite: u64,
+    pub warmup_divergences: u64,
+    pub warmup_rejected_nonfinite: u64,
+    pub draws: u64,
+    /// E-BFMI (HMC only).
+    pub ebfmi: Option<f64>,
+}
+
+/// The convergence diagnostics and the plain-language verdict.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct DiagnosticsSummary {
+    pub rhat_max: f64,
+    pub ess_bulk_min: f64,
+    pub ess_tail_min: f64,
+    /// Pareto k-hat of the Laplace importance weights, where the check ran.
+    pub khat: Option<f64>,
+    /// Whether the chains pass the R-hat and ESS thresholds.
+    pub converged: bool,
+    /// Whether the Laplace (inverse-Hessian) Gaussian passed the k-hat check.
+    pub laplace_adequate: Option<bool>,
+    /// The verdict in plain words, ending with the caution.
+    pub verdict: String,
+}
+
+/// How far the Laplace Gaussian holds: importance weights of Laplace draws under the true posterior.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct LaplaceCheckSummary {
+    /// Laplace draws evaluated (cost only).
+    pub draws: usize,
+    /// Draws whose cost could not be evaluated (weight 0).
+    pub failed: usize,
+    pub khat: f64,
+    /// k-hat below this is reliable: min(1 − 1/log10(S), 0.7).
+    pub khat_threshold: f64,
+    /// Kish effective sample size of the weights, and as a fraction of the draws.
+    pub kish_ess: f64,
+    pub kish_fraction: f64,
+    /// Per component: posterior (sampled) variance / Laplace variance.
+    pub variance_ratio: Vec<f64>,
+}
+
+/// How the chains were run.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct SamplingSummary {
+    pub kernel: String,
+    /// The metric (preconditioner) the chains ran with.
+    pub metric: String,
+    pub chains: usize,
+    pub draws_per_chain: u64,
+    pub warmup: u64,
+    pub thin: u64,
+    pub seed: u64,
+    /// Whether this summary was written by a resumed run.
+    pub resumed: bool,
+    /// Evaluations served from the evaluation record on resume instead of the model.
+    pub replayed_evaluations: u64,
+}
+
 /// Everything a run reports. Stages that did not run are absent.
 #[derive(Debug, Clone, Default, serde::Serialize, serde::Deserialize)]
 pub struct Summary {
@@ -91,8 +181,21 @@ pub struct Summary {
     pub background: Option<Vec<f64>>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub background_variance: Option<Vec<f64>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub sampling: Option<SamplingSummary>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub posterior: Option<PosteriorSummary>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub chains: Option<Vec<ChainReport>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub diagnostics: Option<DiagnosticsSummary>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub laplace_check: Option<LaplaceCheckSummary>,
     /// Every evaluation of the run.
     pub evaluations: EvalCounts,
+    /// The evaluations split by stage (check, map, hessian, laplace_check, warmup, sampling).
+    #[serde(default, skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub evaluations_by_stage: std::collections::BTreeMap<String, EvalCounts>,
 }
 
 impl Summary {

@@ -48,6 +48,16 @@ pub const FD_MAX_DIM: usize = 100;
 /// Runs the Taylor test at `x` along a seeded random direction, plus a finite-difference comparison
 /// for small dimensions.
 pub fn gradient_test(problem: &dyn Problem, x: &[f64], seed: u64) -> Result<GradientReport> {
+    taylor(problem, x, seed, problem.dim() <= FD_MAX_DIM)
+}
+
+/// The Taylor test alone (13 evaluations), without the finite-difference comparison: the check a
+/// sampling run makes of its start before spending model runs on the analysis and the chains.
+pub fn taylor_test(problem: &dyn Problem, x: &[f64], seed: u64) -> Result<GradientReport> {
+    taylor(problem, x, seed, false)
+}
+
+fn taylor(problem: &dyn Problem, x: &[f64], seed: u64, with_fd: bool) -> Result<GradientReport> {
     let n = problem.dim();
     let mut g = vec![0.0; n];
     let j0 = problem
@@ -108,7 +118,7 @@ pub fn gradient_test(problem: &dyn Problem, x: &[f64], seed: u64) -> Result<Grad
         let sxx: f64 = pts.iter().map(|p| (p.0 - mx).powi(2)).sum();
         sxy / sxx
     });
-    let fd_max_rel_error = if n <= FD_MAX_DIM {
+    let fd_max_rel_error = if with_fd {
         Some(fd_compare(problem, x, &g)?)
     } else {
         None

@@ -11,6 +11,7 @@ pub mod counted;
 pub mod linear_gaussian;
 pub mod lorenz96;
 pub mod prior;
+pub mod replay;
 pub mod settings;
 
 pub use counted::{Counted, EvalCounts};

@@ -17,6 +17,7 @@
 use std::sync::Arc;
 
 use crate::error::{Error, EvalError, Result};
+pub use crate::hash::Fnv64;
 use crate::precond::Preconditioner;
 use crate::problem::{Counted, EvalCounts, Problem};
 
@@ -171,34 +172,6 @@ fn classify(r: std::result::Result<f64, EvalError>) -> Result<Option<f64>> {
             "sampling: evaluating the cost at a proposed point",
             e,
         )),
-    }
-}
-
-/// The 64-bit FNV-1a hash (Fowler, Noll & Vo; public-domain algorithm), for fingerprints and checksums.
-#[derive(Debug, Clone, Copy)]
-pub struct Fnv64(u64);
-
-impl Fnv64 {
-    /// The FNV-1a offset basis.
-    pub fn new() -> Self {
-        Fnv64(0xcbf2_9ce4_8422_2325)
-    }
-    /// Hashes more bytes.
-    pub fn write(&mut self, bytes: &[u8]) {
-        for b in bytes {
-            self.0 ^= u64::from(*b);
-            self.0 = self.0.wrapping_mul(0x0000_0100_0000_01b3);
-        }
-    }
-    /// The hash so far.
-    pub fn finish(&self) -> u64 {
-        self.0
-    }
-}
-
-impl Default for Fnv64 {
-    fn default() -> Self {
-        Fnv64::new()
     }
 }
 

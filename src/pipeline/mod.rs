@@ -12,11 +12,17 @@ use crate::output::{table, Summary};
 use crate::precond::{laplace, Laplace, LaplaceOptions};
 use crate::problem::builtin::{self, Builtin};
 use crate::problem::check::{gradient_test, GradientReport};
+use crate::problem::replay::Replay;
 use crate::problem::settings::Settings;
 use crate::problem::{Counted, Problem};
 
+pub mod sample;
+
+pub use sample::{read_run, run_sample, Metric, SampleOutcome, SampleRunConfig};
+
 /// Where the problem comes from.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
 pub enum ProblemSource {
     /// A built-in problem by name with its settings (`key=value`).
     Builtin { name: String, settings: Vec<String> },
@@ -25,7 +31,7 @@ pub enum ProblemSource {
 /// A problem ready to run: counted, with what the tool knows about it.
 pub struct Loaded {
     /// The problem, counting every evaluation.
-    pub problem: Counted<Box<dyn Problem>>,
+    pub problem: Counted<Replay<Box<dyn Problem>>>,
     pub name: String,
     pub description: String,
     pub settings: serde_json::Value,
@@ -82,7 +88,7 @@ pub fn load(source: &ProblemSource) -> Result<Loaded> {
                 truth,
             } = builtin::open(name, &s)?;
             Ok(Loaded {
-                problem: Counted::new(problem),
+                problem: Counted::new(Replay::new(problem)),
                 name: name.clone(),
                 description,
                 settings,
@@ -168,7 +174,7 @@ pub fn run_check(
     Ok((report, summary))
 }
 
-fn check_summary(r: &GradientReport) -> CheckSummary {
+pub(crate) fn check_summary(r: &GradientReport) -> CheckSummary {
     CheckSummary {
         passed: r.passed,
         verdict: r.verdict.clone(),
@@ -262,7 +268,7 @@ pub fn run_hessian(
     Ok((map, summary))
 }
 
-fn laplace_summary(
+pub(crate) fn laplace_summary(
     loaded: &Loaded,
     lap: &Laplace<'_>,
     map: &MapResult,
@@ -327,7 +333,9 @@ pub fn run_demo(out: &Path) -> Result<DemoReport> {
     let description = crate::problem::lorenz96::describe(&scenario.config);
     let settings = serde_json::to_value(&scenario.config).unwrap_or_default();
     let loaded = Loaded {
-        problem: Counted::new(Box::new(crate::problem::lorenz96::Lorenz96::new(scenario)?)),
+        problem: Counted::new(Replay::new(Box::new(
+            crate::problem::lorenz96::Lorenz96::new(scenario)?,
+        ))),
         name: "lorenz96".into(),
         description,
         settings,
