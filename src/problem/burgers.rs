@@ -37,7 +37,7 @@ use rustfft::num_complex::Complex;
 use super::circulant::{periodised_column, soar, CirculantPrior};
 use super::lorenz96::{normal_draws, Observation, SynthMode};
 use super::prior::Prior;
-use super::settings::{positive, Settings};
+use super::settings::{observation_schedule, positive, Settings};
 use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
@@ -422,23 +422,7 @@ impl BurgersConfig {
         ] {
             positive(key, v)?;
         }
-        if self.window == 0 {
-            return Err(Error::Config(
-                "setting window=0: the window must hold at least one step".into(),
-            ));
-        }
-        if self.obs_every == 0 || self.obs_every > self.window {
-            return Err(Error::Config(format!(
-                "setting obs_every={}: it must be between 1 and the window length ({})",
-                self.obs_every, self.window
-            )));
-        }
-        if self.obs_stride == 0 || self.obs_stride > self.n {
-            return Err(Error::Config(format!(
-                "setting obs_stride={}: it must be between 1 and n ({})",
-                self.obs_stride, self.n
-            )));
-        }
+        observation_schedule(self.window, self.obs_every, self.obs_stride, self.n)?;
         let len = (self.window + 1).saturating_mul(self.n);
         if len > MAX_TRAJECTORY_LEN {
             return Err(Error::Config(format!(

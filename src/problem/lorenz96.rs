@@ -20,7 +20,7 @@ use rand_distr::{Distribution, StandardNormal};
 
 use super::circulant::soar;
 use super::prior::{DensePrior, Prior};
-use super::settings::{positive, Settings};
+use super::settings::{observation_schedule, positive, Settings};
 use super::{CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
@@ -355,23 +355,7 @@ impl Lorenz96Config {
         if !self.model.forcing.is_finite() {
             return Err(Error::Config("setting forcing: it must be finite".into()));
         }
-        if self.window == 0 {
-            return Err(Error::Config(
-                "setting window=0: the window must hold at least one step".into(),
-            ));
-        }
-        if self.obs_every == 0 || self.obs_every > self.window {
-            return Err(Error::Config(format!(
-                "setting obs_every={}: it must be between 1 and the window length ({})",
-                self.obs_every, self.window
-            )));
-        }
-        if self.obs_stride == 0 || self.obs_stride > self.model.n {
-            return Err(Error::Config(format!(
-                "setting obs_stride={}: it must be between 1 and n ({})",
-                self.obs_stride, self.model.n
-            )));
-        }
+        observation_schedule(self.window, self.obs_every, self.obs_stride, self.model.n)?;
         Ok(())
     }
 
