@@ -95,7 +95,7 @@ pub enum Command {
 /// Which problem to run on, and where to write.
 #[derive(Debug, Args)]
 pub struct ProblemArgs {
-    /// A built-in problem: lorenz96 or linear-gaussian.
+    /// A built-in problem: lorenz96, linear-gaussian or burgers.
     #[arg(long)]
     pub problem: Option<String>,
     /// Problem settings as key=value (repeatable), e.g. --set obs_op=square --set window=12.

@@ -2,6 +2,7 @@
 
 use std::path::Path;
 
+use super::burgers::{Burgers, BurgersConfig};
 use super::linear_gaussian::{GaussianReference, LinearGaussian, LinearGaussianConfig};
 use super::lorenz96::{self, Lorenz96, Lorenz96Config, Scenario};
 use super::settings::Settings;
@@ -9,7 +10,7 @@ use super::Problem;
 use crate::error::{Error, Result};
 
 /// Names of the built-in problems.
-pub const NAMES: &[&str] = &["lorenz96", "linear-gaussian"];
+pub const NAMES: &[&str] = &["lorenz96", "linear-gaussian", "burgers"];
 
 /// A built-in problem with what the tool knows about it beyond the cost function.
 pub struct Builtin {
@@ -81,6 +82,18 @@ pub fn open(name: &str, settings: &Settings) -> Result<Builtin> {
                 truth: Some(p.truth().to_vec()),
                 problem: Box::new(p),
                 reference,
+            })
+        }
+        "burgers" => {
+            let config = BurgersConfig::from_settings(settings)?;
+            settings.finish(name)?;
+            let p = Burgers::new(config)?;
+            Ok(Builtin {
+                description: p.describe(),
+                settings: serde_json::to_value(p.config()).unwrap_or_default(),
+                truth: Some(p.truth().to_vec()),
+                problem: Box::new(p),
+                reference: None,
             })
         }
         other => Err(Error::Config(format!(

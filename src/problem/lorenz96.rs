@@ -18,8 +18,9 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
+use super::circulant::soar;
 use super::prior::{DensePrior, Prior};
-use super::settings::{positive, Settings};
+use super::settings::{observation_schedule, positive, Settings};
 use super::{CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
@@ -243,15 +244,30 @@ pub struct Observation {
     pub sigma: f64,
 }
 
-/// How a synthetic scenario was made.
+/// How a synthetic scenario was made (shared by the built-in 4D-Var problems).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum SynthMode {
-    /// Truth from a long model run; background = truth + a draw of the background error.
+    /// Truth from the problem's own recipe (Lorenz-96: a long model run); background = truth + a draw of
+    /// the background error.
     Demo,
     /// Background as in `Demo`; truth drawn from N(xb, B); observations from that truth. Repeating it
     /// with many seeds is a calibration study: the truth is a draw from the prior the cost assumes.
     Calibration,
+}
+
+impl SynthMode {
+    /// Reads the `synth` setting (default `demo`).
+    pub fn from_settings(s: &Settings) -> Result<Self> {
+        match s.get_str("synth").as_deref() {
+            None | Some("demo") => Ok(SynthMode::Demo),
+            Some("calibration") => Ok(SynthMode::Calibration),
+            Some(o) => Err(Error::Config(format!(
+                "setting synth={o}: use 'demo' (truth from the problem's own recipe) or \
+                 'calibration' (truth drawn from the background distribution)"
+            ))),
+        }
+    }
 }
 
 /// Settings that define a Lorenz-96 4D-Var scenario (what `scenario.json` holds).
@@ -307,16 +323,7 @@ impl Lorenz96Config {
             forcing: s.get("forcing", d.model.forcing)?,
             dt: positive("dt", s.get("dt", d.model.dt)?)?,
         };
-        let synth = match s.get_str("synth").as_deref() {
-            None | Some("demo") => SynthMode::Demo,
-            Some("calibration") => SynthMode::Calibration,
-            Some(o) => {
-                return Err(Error::Config(format!(
-                    "setting synth={o}: use 'demo' (truth from a long model run) or 'calibration' \
-                     (truth drawn from the background distribution)"
-                )))
-            }
-        };
+        let synth = SynthMode::from_settings(s)?;
         let obs_op = match s.get_str("obs_op") {
             None => d.obs_op,
             Some(v) => ObsOperator::parse(&v)?,
@@ -348,23 +355,7 @@ impl Lorenz96Config {
         if !self.model.forcing.is_finite() {
             return Err(Error::Config("setting forcing: it must be finite".into()));
         }
-        if self.window == 0 {
-            return Err(Error::Config(
-                "setting window=0: the window must hold at least one step".into(),
-            ));
-        }
-        if self.obs_every == 0 || self.obs_every > self.window {
-            return Err(Error::Config(format!(
-                "setting obs_every={}: it must be between 1 and the window length ({})",
-                self.obs_every, self.window
-            )));
-        }
-        if self.obs_stride == 0 || self.obs_stride > self.model.n {
-            return Err(Error::Config(format!(
-                "setting obs_stride={}: it must be between 1 and n ({})",
-                self.obs_stride, self.model.n
-            )));
-        }
+        observation_schedule(self.window, self.obs_every, self.obs_stride, self.model.n)?;
         Ok(())
     }
 
@@ -374,7 +365,7 @@ impl Lorenz96Config {
         DMatrix::from_fn(n, n, |i, j| {
             let d = i.abs_diff(j);
             let d = d.min(n - d) as f64 / self.corr_len;
-            self.sigma_b * self.sigma_b * (1.0 + d) * (-d).exp()
+            self.sigma_b * self.sigma_b * soar(d)
         })
     }
 }
@@ -389,7 +380,8 @@ pub struct Scenario {
     pub truth: Option<Vec<Vec<f64>>>,
 }
 
-fn normal_draws(rng: &mut ChaCha8Rng, n: usize) -> Vec<f64> {
+/// n independent standard normal draws.
+pub(crate) fn normal_draws(rng: &mut ChaCha8Rng, n: usize) -> Vec<f64> {
     (0..n).map(|_| StandardNormal.sample(rng)).collect()
 }
 

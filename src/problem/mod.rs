@@ -6,7 +6,9 @@
 //! is π(x) ∝ exp(−J(x)). The sign flip to a log-density happens in one place only, the sampler's target.
 
 pub mod builtin;
+pub mod burgers;
 pub mod check;
+pub mod circulant;
 pub mod counted;
 pub mod linear_gaussian;
 pub mod lorenz96;
@@ -14,6 +16,7 @@ pub mod prior;
 pub mod replay;
 pub mod settings;
 
+pub use circulant::CirculantPrior;
 pub use counted::{Counted, EvalCounts};
 pub use prior::{DensePrior, DiagonalPrior, Prior};
 

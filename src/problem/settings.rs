@@ -119,3 +119,29 @@ pub fn positive(key: &str, v: f64) -> Result<f64> {
         )))
     }
 }
+
+/// Checks the observation schedule of a synthetic 4D-Var scenario: a window of at least one step,
+/// observations every `obs_every` steps within it, and every `obs_stride`-th of `n` points.
+pub fn observation_schedule(
+    window: usize,
+    obs_every: usize,
+    obs_stride: usize,
+    n: usize,
+) -> Result<()> {
+    if window == 0 {
+        return Err(Error::Config(
+            "setting window=0: the window must hold at least one step".into(),
+        ));
+    }
+    if obs_every == 0 || obs_every > window {
+        return Err(Error::Config(format!(
+            "setting obs_every={obs_every}: it must be between 1 and the window length ({window})"
+        )));
+    }
+    if obs_stride == 0 || obs_stride > n {
+        return Err(Error::Config(format!(
+            "setting obs_stride={obs_stride}: it must be between 1 and n ({n})"
+        )));
+    }
+    Ok(())
+}
