@@ -71,16 +71,22 @@ fn taylor(problem: &dyn Problem, x: &[f64], seed: u64, with_fd: bool) -> Result<
                 .into(),
         ));
     }
-    // A random direction with the scale of the state, not nearly orthogonal to the gradient.
+    // A random direction, not nearly orthogonal to the gradient: a draw from the background error
+    // N(0, B) where the problem gives B (so it has the smoothness and scale of a real increment and
+    // does not excite the badly conditioned small scales), else white noise at the scale of the state.
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let prior = problem.prior().filter(|p| p.dim() == n);
     let scale = (norm(x) / (n as f64).sqrt()).max(1.0);
     let mut h = vec![0.0; n];
+    let mut z = vec![0.0; n];
     let mut hg = 0.0;
     for _ in 0..20 {
-        h.iter_mut().for_each(|v| {
-            let z: f64 = StandardNormal.sample(&mut rng);
-            *v = scale * z;
-        });
+        z.iter_mut()
+            .for_each(|v| *v = StandardNormal.sample(&mut rng));
+        match prior {
+            Some(p) => p.mul_sqrt(&z, &mut h),
+            None => h.iter_mut().zip(&z).for_each(|(a, b)| *a = scale * b),
+        }
         hg = dot(&h, &g);
         if hg.abs() > 1e-3 * norm(&h) * grad_norm {
             break;
