@@ -47,8 +47,14 @@ impl EvalError {
 impl fmt::Display for EvalError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
-            EvalError::NonFinite { what } => write!(f, "the {what} is not finite (NaN or infinite)"),
-            EvalError::Dimension { what, expected, got } => {
+            EvalError::NonFinite { what } => {
+                write!(f, "the {what} is not finite (NaN or infinite)")
+            }
+            EvalError::Dimension {
+                what,
+                expected,
+                got,
+            } => {
                 write!(f, "{what} has length {got}, expected {expected}")
             }
             EvalError::Unsupported { capability } => {
@@ -69,7 +75,10 @@ pub enum Error {
     /// A bad option, setting or combination of them; the message says how to fix it.
     Config(String),
     /// A file could not be read or written.
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     /// A file was read but its contents are wrong (corrupt, wrong format, wrong problem).
     Format { path: PathBuf, message: String },
     /// A numerical failure (e.g. a matrix that should be positive definite is not).
@@ -85,15 +94,24 @@ pub enum Error {
 impl Error {
     /// Wraps an evaluation error with what was being done when it happened.
     pub fn eval(context: impl Into<String>, source: EvalError) -> Self {
-        Error::Eval { context: context.into(), source }
+        Error::Eval {
+            context: context.into(),
+            source,
+        }
     }
     /// An I/O error on a path.
     pub fn io(path: impl Into<PathBuf>, source: std::io::Error) -> Self {
-        Error::Io { path: path.into(), source }
+        Error::Io {
+            path: path.into(),
+            source,
+        }
     }
     /// A content error in a file.
     pub fn format(path: impl Into<PathBuf>, message: impl Into<String>) -> Self {
-        Error::Format { path: path.into(), message: message.into() }
+        Error::Format {
+            path: path.into(),
+            message: message.into(),
+        }
     }
 }
 

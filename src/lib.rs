@@ -4,6 +4,7 @@
 //! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
+pub mod adapter;
 pub mod error;
 pub mod precond;
 pub mod problem;

@@ -19,7 +19,11 @@ impl DensePrecond {
     /// From the Hessian H (symmetrised first); fails where H is not positive definite.
     pub fn from_hessian(h: &DMatrix<f64>) -> Result<Self> {
         if h.nrows() != h.ncols() {
-            return Err(Error::Numerical(format!("Hessian is {}x{}, not square", h.nrows(), h.ncols())));
+            return Err(Error::Numerical(format!(
+                "Hessian is {}x{}, not square",
+                h.nrows(),
+                h.ncols()
+            )));
         }
         let sym = (h + h.transpose()) * 0.5;
         let chol = nalgebra::Cholesky::new(sym).ok_or_else(|| {

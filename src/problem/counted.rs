@@ -98,13 +98,19 @@ impl<P: Problem + ?Sized> Problem for Counted<P> {
         check_len("control vector", x, n)?;
         check_len("gradient buffer", grad, n)?;
         self.gradient.fetch_add(1, Ordering::Relaxed);
-        let r = self.inner.cost_grad(x, grad).and_then(|c| check_finite(c, Some(grad)).map(|_| c));
+        let r = self
+            .inner
+            .cost_grad(x, grad)
+            .and_then(|c| check_finite(c, Some(grad)).map(|_| c));
         self.tally(r)
     }
     fn cost(&self, x: &[f64]) -> Result<f64, EvalError> {
         check_len("control vector", x, self.inner.dim())?;
         self.cost.fetch_add(1, Ordering::Relaxed);
-        let r = self.inner.cost(x).and_then(|c| check_finite(c, None).map(|_| c));
+        let r = self
+            .inner
+            .cost(x)
+            .and_then(|c| check_finite(c, None).map(|_| c));
         self.tally(r)
     }
     fn has_hess_vec(&self) -> bool {
@@ -116,10 +122,15 @@ impl<P: Problem + ?Sized> Problem for Counted<P> {
         check_len("direction", v, n)?;
         check_len("product buffer", out, n)?;
         if !self.inner.has_hess_vec() {
-            return Err(EvalError::Unsupported { capability: "Hessian-vector product" });
+            return Err(EvalError::Unsupported {
+                capability: "Hessian-vector product",
+            });
         }
         self.hessvec.fetch_add(1, Ordering::Relaxed);
-        let r = self.inner.hess_vec(x, v, out).and_then(|_| check_finite(0.0, Some(out)));
+        let r = self
+            .inner
+            .hess_vec(x, v, out)
+            .and_then(|_| check_finite(0.0, Some(out)));
         self.tally(r)
     }
     fn cost_split(&self, x: &[f64]) -> Result<Option<CostSplit>, EvalError> {

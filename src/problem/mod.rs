@@ -59,7 +59,9 @@ pub trait Problem: Send + Sync {
 
     /// The Hessian-vector product ∇²J(x) v, written into `out`.
     fn hess_vec(&self, _x: &[f64], _v: &[f64], _out: &mut [f64]) -> Result<(), EvalError> {
-        Err(EvalError::Unsupported { capability: "Hessian-vector product" })
+        Err(EvalError::Unsupported {
+            capability: "Hessian-vector product",
+        })
     }
 
     /// The cost split into Jb and Jo, where the code can report it.
@@ -104,7 +106,11 @@ impl<P: Problem + ?Sized> Problem for Box<P> {
 /// Checks that a vector has the problem's dimension.
 pub fn check_len(what: &str, v: &[f64], expected: usize) -> Result<(), EvalError> {
     if v.len() != expected {
-        return Err(EvalError::Dimension { what: what.to_string(), expected, got: v.len() });
+        return Err(EvalError::Dimension {
+            what: what.to_string(),
+            expected,
+            got: v.len(),
+        });
     }
     Ok(())
 }
@@ -112,11 +118,15 @@ pub fn check_len(what: &str, v: &[f64], expected: usize) -> Result<(), EvalError
 /// Checks that a cost and gradient are finite, naming the first bad gradient component.
 pub fn check_finite(cost: f64, grad: Option<&[f64]>) -> Result<(), EvalError> {
     if !cost.is_finite() {
-        return Err(EvalError::NonFinite { what: "cost".into() });
+        return Err(EvalError::NonFinite {
+            what: "cost".into(),
+        });
     }
     if let Some(g) = grad {
         if let Some(i) = g.iter().position(|v| !v.is_finite()) {
-            return Err(EvalError::NonFinite { what: format!("gradient component {i}") });
+            return Err(EvalError::NonFinite {
+                what: format!("gradient component {i}"),
+            });
         }
     }
     Ok(())

@@ -116,7 +116,9 @@ impl DensePrior {
         }
         let chol = nalgebra::Cholesky::new(cov.clone())
             .ok_or_else(|| {
-                Error::Numerical("the background-error covariance B is not positive definite".into())
+                Error::Numerical(
+                    "the background-error covariance B is not positive definite".into(),
+                )
             })?
             .l();
         Ok(DensePrior { mean, cov, chol })
