@@ -213,7 +213,7 @@ impl Pool {
                     restarts += 1;
                     self.restarts.fetch_add(1, Ordering::Relaxed);
                 }
-                Err(WorkerError::Protocol(context, e)) => {
+                Err(WorkerError::Protocol(message, e)) => {
                     slot.worker = None;
                     return Err(match e {
                         ProtocolError::Length {
@@ -225,7 +225,7 @@ impl Pool {
                             expected,
                             got,
                         },
-                        e => fatal(format!("{context}: {e}")),
+                        _ => fatal(message),
                     });
                 }
                 Err(WorkerError::Start(m)) => {

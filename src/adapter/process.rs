@@ -139,8 +139,9 @@ pub enum WorkerError {
     /// The process exited, was killed, closed its stdout, or did not answer in time. It is gone; a new one
     /// may be started.
     Died(String),
-    /// The adapter answered with something that breaks the protocol. The message quotes it. The process
-    /// has been stopped (its stream can no longer be trusted).
+    /// The adapter answered with something that breaks the protocol: the whole message (quoting what
+    /// arrived) and the protocol error itself. The process has been stopped (its stream can no longer be
+    /// trusted).
     Protocol(String, ProtocolError),
     /// The process could not be started or the handshake failed.
     Start(String),
@@ -149,8 +150,9 @@ pub enum WorkerError {
 impl std::fmt::Display for WorkerError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
-            WorkerError::Died(m) | WorkerError::Start(m) => write!(f, "{m}"),
-            WorkerError::Protocol(context, e) => write!(f, "{context}: {e}"),
+            WorkerError::Died(m) | WorkerError::Start(m) | WorkerError::Protocol(m, _) => {
+                write!(f, "{m}")
+            }
         }
     }
 }
@@ -804,13 +806,11 @@ impl Worker {
 
     fn protocol_failure(&mut self, op: Op, e: ProtocolError) -> WorkerError {
         self.stop(TERM_GRACE);
-        WorkerError::Protocol(
-            self.describe(&format!(
-                "broke the protocol answering a {} request",
-                op.name()
-            )),
-            e,
-        )
+        let m = self.describe(&format!(
+            "broke the protocol answering a {} request: {e}",
+            op.name()
+        ));
+        WorkerError::Protocol(m, e)
     }
 
     /// "the adapter `CMD` (worker i) WHAT; last lines of its stderr: ...".

@@ -565,28 +565,29 @@ pub fn decode_hello(line: &[u8]) -> Result<Hello, ProtocolError> {
     }
     let j: HelloJson =
         serde_json::from_value(value).map_err(|e| malformed(format!("bad hello ({e})"), line))?;
-    let encodings =
-        match &j.encodings {
-            None => vec![Encoding::Text],
-            Some(list) => {
-                let mut v = Vec::new();
-                for name in list {
-                    match Encoding::from_name(name) {
-                        Some(e) => v.push(e),
-                        None => return Err(malformed(
+    let encodings = match &j.encodings {
+        None => vec![Encoding::Text],
+        Some(list) => {
+            let mut v = Vec::new();
+            for name in list {
+                match Encoding::from_name(name) {
+                    Some(e) => v.push(e),
+                    None => {
+                        return Err(malformed(
                             format!(
                                 "unknown encoding \"{name}\" in the hello (known: text, binary)"
                             ),
                             line,
-                        )),
+                        ))
                     }
                 }
-                if v.is_empty() {
-                    return Err(malformed("the hello lists no encodings", line));
-                }
-                v
             }
-        };
+            if v.is_empty() {
+                return Err(malformed("the hello lists no encodings", line));
+            }
+            v
+        }
+    };
     let mut offers = Capabilities::default();
     for name in j.offers.iter().flatten() {
         match name.as_str() {
