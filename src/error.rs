@@ -130,15 +130,8 @@ impl fmt::Display for Error {
     }
 }
 
-impl std::error::Error for Error {
-    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
-        match self {
-            Error::Eval { source, .. } => Some(source),
-            Error::Io { source, .. } => Some(source),
-            _ => None,
-        }
-    }
-}
+/// The messages above already include their causes, so no separate source chain is exposed.
+impl std::error::Error for Error {}
 
 /// The crate's result type.
 pub type Result<T> = std::result::Result<T, Error>;

@@ -5,7 +5,11 @@
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
 pub mod adapter;
+pub mod cli;
 pub mod error;
+pub mod optimize;
+pub mod output;
+pub mod pipeline;
 pub mod precond;
 pub mod problem;
 

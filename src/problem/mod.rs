@@ -5,12 +5,13 @@
 //! problem is a cost function J(x) over the control vector x with its gradient; the posterior it defines
 //! is π(x) ∝ exp(−J(x)). The sign flip to a log-density happens in one place only, the sampler's target.
 
-// pub mod builtin;
+pub mod builtin;
+pub mod check;
 pub mod counted;
-// pub mod linear_gaussian;
-// pub mod lorenz96;
+pub mod linear_gaussian;
+pub mod lorenz96;
 pub mod prior;
-// pub mod settings;
+pub mod settings;
 
 pub use counted::{Counted, EvalCounts};
 pub use prior::{DensePrior, DiagonalPrior, Prior};
