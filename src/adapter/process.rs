@@ -26,6 +26,9 @@ const TAIL_LINES: usize = 20;
 const TAIL_LINE_CHARS: usize = 400;
 /// Longest hello line accepted (component names can make it long).
 const MAX_HELLO: usize = 128 << 20;
+/// Pipe buffer size asked of the kernel for the adapter's stdin and stdout (Linux).
+#[cfg(target_os = "linux")]
+const PIPE_SIZE: libc::c_int = 1 << 20;
 /// How long an adapter may take to exit after `quit` before it is killed.
 const QUIT_GRACE: Duration = Duration::from_secs(2);
 /// How long a killed adapter may take to act on SIGTERM before SIGKILL.
@@ -223,9 +226,8 @@ fn spawn_child(cmd: Command) -> io::Result<Child> {
                     let _ = back.send(cmd.spawn());
                 }
             });
-        if started.is_err() {
-            // Without the thread the channel's receiver is gone; `spawn_child` then forks directly.
-        }
+        // If the thread could not start, its receiver is gone and `spawn_child` forks directly.
+        drop(started);
         Mutex::new(tx)
     });
     let (back_tx, back_rx) = mpsc::sync_channel(1);
@@ -544,6 +546,17 @@ impl Worker {
         })?;
         let (stdin, stdout, stderr) =
             (child.stdin.take(), child.stdout.take(), child.stderr.take());
+        #[cfg(target_os = "linux")]
+        {
+            use std::os::fd::AsRawFd;
+            // Larger pipes mean fewer system calls and context switches for big binary frames; the
+            // kernel may refuse (a per-user limit), which only costs speed.
+            let fds = [stdin.as_ref().map(|p| p.as_raw_fd()), stdout.as_ref().map(|p| p.as_raw_fd())];
+            for fd in fds.into_iter().flatten() {
+                // SAFETY: fcntl on a pipe descriptor we own; no memory is passed.
+                unsafe { libc::fcntl(fd, libc::F_SETPIPE_SZ, PIPE_SIZE) };
+            }
+        }
         let (Some(stdin), Some(stdout), Some(stderr)) = (stdin, stdout, stderr) else {
             kill_and_reap(&mut child, Duration::ZERO);
             return Err(WorkerError::Start(

@@ -706,8 +706,10 @@ fn frame_header(out: &mut Vec<u8>, tag: u8, flags: u8, id: u64, payload_len: usi
 }
 
 fn put_f64s(out: &mut Vec<u8>, v: &[f64]) {
-    for x in v {
-        out.extend_from_slice(&x.to_le_bytes());
+    let start = out.len();
+    out.resize(start + 8 * v.len(), 0);
+    for (chunk, x) in out[start..].chunks_exact_mut(8).zip(v) {
+        chunk.copy_from_slice(&x.to_le_bytes());
     }
 }
 
@@ -1116,6 +1118,15 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
             head,
         ));
     }
+    if op == Op::CostGrad {
+        if payload.is_empty() {
+            return Err(malformed("an empty reply to a cost_grad request", head));
+        }
+        let grad = get_f64s(&payload[8..]);
+        check_len("gradient", &grad, dim)?;
+        let cost = get_f64s(&payload[..8])[0];
+        return Ok((id, Reply::CostGrad { cost, grad }));
+    }
     let vals = get_f64s(payload);
     let m = vals.len();
     let fixed = |want: usize, what: &'static str| {
@@ -1129,16 +1140,6 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
         Ok(())
     };
     let reply = match op {
-        Op::CostGrad => {
-            if m == 0 {
-                return Err(malformed("an empty reply to a cost_grad request", head));
-            }
-            check_len("gradient", &vals[1..], dim)?;
-            Reply::CostGrad {
-                cost: vals[0],
-                grad: vals[1..].to_vec(),
-            }
-        }
         Op::Cost => {
             fixed(1, "cost reply (values)")?;
             Reply::Cost { cost: vals[0] }
@@ -1166,7 +1167,7 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
             check_len("prior product", &vals, dim)?;
             Reply::Vector { out: vals }
         }
-        Op::Quit => return Err(malformed("a quit request has no reply", head)),
+        Op::CostGrad | Op::Quit => return Err(malformed("a quit request has no reply", head)),
     };
     Ok((id, reply))
 }
