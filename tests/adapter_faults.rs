@@ -307,12 +307,17 @@ fn concurrent_callers_use_the_workers_in_parallel() {
 /// J(x) = ½ Σ (x_i − 1)², so J(0) = 3/2 and ∇J(0) = (−1, −1, −1).
 #[test]
 fn the_minimal_adapter_in_the_protocol_document_works() {
-    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md")).unwrap();
+    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md"))
+        .unwrap();
     let begin = doc.rfind("```python\n").expect("a python block") + "```python\n".len();
     let code = &doc[begin..begin + doc[begin..].find("```").unwrap()];
     let path = std::env::temp_dir().join(format!("varpost-minimal-{}.py", std::process::id()));
     std::fs::write(&path, code).unwrap();
-    let p = start(&AdapterConfig::new(format!("{} '{}'", python(), path.display())));
+    let p = start(&AdapterConfig::new(format!(
+        "{} '{}'",
+        python(),
+        path.display()
+    )));
     let mut g = vec![0.0; 3];
     assert_eq!(p.cost_grad(&[0.0; 3], &mut g).unwrap(), 1.5);
     assert_eq!(g, vec![-1.0; 3]);
@@ -320,4 +325,3 @@ fn the_minimal_adapter_in_the_protocol_document_works() {
     drop(p);
     let _ = std::fs::remove_file(&path);
 }
-

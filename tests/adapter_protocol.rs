@@ -386,7 +386,8 @@ fn decoders_never_panic_on_arbitrary_bytes() {
 
 /// The code blocks of adapters/PROTOCOL.md between the fence lines opening with `lang`.
 fn doc_blocks(lang: &str) -> Vec<String> {
-    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md")).unwrap();
+    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md"))
+        .unwrap();
     let mut blocks = Vec::new();
     let mut cur: Option<String> = None;
     for line in doc.lines() {
@@ -406,25 +407,53 @@ fn doc_blocks(lang: &str) -> Vec<String> {
 #[test]
 fn the_documented_text_examples_decode() {
     let blocks = doc_blocks("json");
-    let requests = blocks.iter().find(|b| b.contains("\"op\":\"b_half_t_solve\"")).unwrap();
+    let requests = blocks
+        .iter()
+        .find(|b| b.contains("\"op\":\"b_half_t_solve\""))
+        .unwrap();
     for line in requests.lines() {
-        decode_request(Encoding::Text, line.as_bytes(), 3).unwrap_or_else(|e| panic!("{line}: {e}"));
+        decode_request(Encoding::Text, line.as_bytes(), 3)
+            .unwrap_or_else(|e| panic!("{line}: {e}"));
     }
     let replies = blocks.iter().find(|b| b.contains("\"hv\"")).unwrap();
-    let ops = [Op::CostGrad, Op::Cost, Op::HessVec, Op::Split, Op::Background, Op::BHalf, Op::CostGrad];
+    let ops = [
+        Op::CostGrad,
+        Op::Cost,
+        Op::HessVec,
+        Op::Split,
+        Op::Background,
+        Op::BHalf,
+        Op::CostGrad,
+    ];
     for (line, op) in replies.lines().zip(ops) {
-        decode_reply(Encoding::Text, line.as_bytes(), op, 3).unwrap_or_else(|e| panic!("{line}: {e}"));
+        decode_reply(Encoding::Text, line.as_bytes(), op, 3)
+            .unwrap_or_else(|e| panic!("{line}: {e}"));
     }
 }
 
 #[test]
 fn the_documented_binary_frame_decodes() {
-    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md")).unwrap();
-    let line = doc.lines().find(|l| l.starts_with("1c 00 00 00")).expect("the example frame");
-    let bytes: Vec<u8> = line.split_whitespace().map(|h| u8::from_str_radix(h, 16).unwrap()).collect();
+    let doc = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/adapters/PROTOCOL.md"))
+        .unwrap();
+    let line = doc
+        .lines()
+        .find(|l| l.starts_with("1c 00 00 00"))
+        .expect("the example frame");
+    let bytes: Vec<u8> = line
+        .split_whitespace()
+        .map(|h| u8::from_str_radix(h, 16).unwrap())
+        .collect();
     let (id, req) = decode_request(Encoding::Binary, &bytes, 2).unwrap();
-    assert_eq!((id, req.op, req.x.to_vec()), (7, Op::CostGrad, vec![1.0, -2.0]));
+    assert_eq!(
+        (id, req.op, req.x.to_vec()),
+        (7, Op::CostGrad, vec![1.0, -2.0])
+    );
     let mut enc = Vec::new();
-    encode_request(Encoding::Binary, 7, &Request::new(Op::CostGrad, &[1.0, -2.0], &[]), &mut enc);
+    encode_request(
+        Encoding::Binary,
+        7,
+        &Request::new(Op::CostGrad, &[1.0, -2.0], &[]),
+        &mut enc,
+    );
     assert_eq!(enc, bytes);
 }

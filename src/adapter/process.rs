@@ -10,10 +10,11 @@
 use std::collections::VecDeque;
 use std::fs::{File, OpenOptions};
 use std::io::{self, BufRead, BufReader, Read, Write};
+use std::os::fd::{AsRawFd, RawFd};
 use std::os::unix::process::{CommandExt, ExitStatusExt};
 use std::path::{Path, PathBuf};
-use std::process::{Child, ChildStdin, Command, ExitStatus, Stdio};
-use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender, SyncSender};
+use std::process::{Child, ChildStdin, ChildStdout, Command, ExitStatus, Stdio};
+use std::sync::mpsc::{self, Sender, SyncSender};
 use std::sync::{Arc, Mutex, OnceLock};
 use std::thread::{self, JoinHandle};
 use std::time::{Duration, Instant};
@@ -160,15 +161,231 @@ impl std::fmt::Display for WorkerError {
     }
 }
 
-enum ReaderEvent {
-    Message(Vec<u8>),
+/// What came of waiting for one message from the adapter.
+enum ReadOutcome {
+    /// A whole message is the first `.0` bytes of the read buffer; [`Pipes::consume`] drops it.
+    Message(usize),
     Eof,
     Broken(String),
+    Timeout,
 }
 
-struct ReaderMode {
-    encoding: Encoding,
-    max_len: usize,
+/// How the adapter's stdout is cut into messages.
+#[derive(Clone, Copy)]
+enum Framing {
+    /// Lines up to `max` bytes.
+    Line { max: usize },
+    /// Binary frames with a body of at most `max_body` bytes.
+    Frame { max_body: usize },
+}
+
+/// Waits until `fd` is ready for `events` or `deadline` passes (`false`). `None`: no deadline.
+fn wait_ready(fd: RawFd, events: libc::c_short, deadline: Option<Instant>) -> io::Result<bool> {
+    loop {
+        let ms = match deadline {
+            None => -1,
+            Some(d) => {
+                let now = Instant::now();
+                if now >= d {
+                    return Ok(false);
+                }
+                (d - now).as_micros().div_ceil(1000).min(i32::MAX as u128) as libc::c_int
+            }
+        };
+        let mut p = libc::pollfd {
+            fd,
+            events,
+            revents: 0,
+        };
+        // SAFETY: one pollfd that we own, for the duration of the call.
+        let r = unsafe { libc::poll(&mut p, 1, ms) };
+        if r < 0 {
+            let e = io::Error::last_os_error();
+            if e.kind() == io::ErrorKind::Interrupted {
+                continue;
+            }
+            return Err(e);
+        }
+        if r > 0 {
+            // Readable, writable, hung up or in error: the next read or write says which.
+            return Ok(true);
+        }
+    }
+}
+
+fn set_nonblocking(fd: RawFd) {
+    // SAFETY: fcntl flag calls on a descriptor we own; no memory is passed.
+    unsafe {
+        let flags = libc::fcntl(fd, libc::F_GETFL);
+        if flags >= 0 {
+            libc::fcntl(fd, libc::F_SETFL, flags | libc::O_NONBLOCK);
+        }
+    }
+}
+
+/// The adapter's stdin and stdout, both non-blocking, used from the calling thread with deadlines, so
+/// that neither a full pipe nor a silent adapter can block varpost past its timeout.
+struct Pipes {
+    stdin: Option<ChildStdin>,
+    stdout: ChildStdout,
+    buf: Vec<u8>,
+    /// Bytes of `buf` already searched for a newline.
+    scanned: usize,
+}
+
+/// Largest single read: bounds the zero-filling of the read buffer per call.
+const READ_CHUNK: usize = 1 << 20;
+
+impl Pipes {
+    fn new(stdin: ChildStdin, stdout: ChildStdout) -> Self {
+        set_nonblocking(stdin.as_raw_fd());
+        set_nonblocking(stdout.as_raw_fd());
+        Pipes {
+            stdin: Some(stdin),
+            stdout,
+            buf: Vec::new(),
+            scanned: 0,
+        }
+    }
+
+    /// Writes all of `data` before `deadline`; `Ok(false)` on timeout, `Err` when the pipe is closed.
+    fn write_all(&mut self, data: &[u8], deadline: Option<Instant>) -> io::Result<bool> {
+        let Some(stdin) = self.stdin.as_mut() else {
+            return Err(io::Error::new(
+                io::ErrorKind::BrokenPipe,
+                "stdin already closed",
+            ));
+        };
+        let mut off = 0;
+        while off < data.len() {
+            match stdin.write(&data[off..]) {
+                Ok(0) => {
+                    return Err(io::Error::new(
+                        io::ErrorKind::WriteZero,
+                        "the pipe took nothing",
+                    ))
+                }
+                Ok(n) => off += n,
+                Err(e) if e.kind() == io::ErrorKind::WouldBlock => {
+                    if !wait_ready(stdin.as_raw_fd(), libc::POLLOUT, deadline)? {
+                        return Ok(false);
+                    }
+                }
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(e),
+            }
+        }
+        Ok(true)
+    }
+
+    /// Closes the adapter's stdin (it then reads end-of-file).
+    fn close_stdin(&mut self) {
+        self.stdin = None;
+    }
+
+    /// Drops the first `end` bytes of the buffer (a message that has been read), keeping its capacity
+    /// so that large frames do not cost a fresh allocation each time.
+    fn consume(&mut self, end: usize) {
+        self.scanned = 0;
+        if end >= self.buf.len() {
+            self.buf.clear();
+        } else {
+            self.buf.drain(..end);
+        }
+    }
+
+    /// The length of a complete message at the start of the buffer, if there is one; `Err` for input
+    /// that cannot be a message.
+    fn extract(&mut self, framing: Framing) -> Result<Option<usize>, String> {
+        match framing {
+            Framing::Line { max } => {
+                if let Some(i) = self.buf[self.scanned..].iter().position(|&b| b == b'\n') {
+                    return Ok(Some(self.scanned + i + 1));
+                }
+                self.scanned = self.buf.len();
+                if self.buf.len() > max {
+                    return Err(format!(
+                        "the adapter wrote a line longer than {max} bytes without a newline; it starts {}",
+                        protocol::quote(&self.buf, 240)
+                    ));
+                }
+                Ok(None)
+            }
+            Framing::Frame { max_body } => {
+                if self.buf.len() < 4 {
+                    return Ok(None);
+                }
+                let body =
+                    protocol::frame_body_len([self.buf[0], self.buf[1], self.buf[2], self.buf[3]]);
+                if body < protocol::FRAME_HEADER - 4 || body > max_body {
+                    return Err(format!(
+                        "a binary frame announcing {body} bytes (allowed: {} to {max_body}) arrived; is the \
+                         adapter printing text to stdout? It starts {}",
+                        protocol::FRAME_HEADER - 4,
+                        protocol::quote(&self.buf, 124)
+                    ));
+                }
+                if self.buf.len() >= 4 + body {
+                    return Ok(Some(4 + body));
+                }
+                Ok(None)
+            }
+        }
+    }
+
+    /// How many more bytes the message being received needs, as far as known.
+    fn wanted(&self, framing: Framing) -> usize {
+        match framing {
+            Framing::Frame { .. } if self.buf.len() >= 4 => {
+                let body =
+                    protocol::frame_body_len([self.buf[0], self.buf[1], self.buf[2], self.buf[3]]);
+                (4 + body)
+                    .saturating_sub(self.buf.len())
+                    .clamp(1, READ_CHUNK)
+            }
+            _ => 1 << 16,
+        }
+    }
+
+    /// Reads until one whole message has arrived or `deadline` passes.
+    fn read_message(&mut self, framing: Framing, deadline: Option<Instant>) -> ReadOutcome {
+        loop {
+            match self.extract(framing) {
+                Ok(Some(m)) => return ReadOutcome::Message(m),
+                Ok(None) => {}
+                Err(m) => return ReadOutcome::Broken(m),
+            }
+            let old = self.buf.len();
+            self.buf.resize(old + self.wanted(framing), 0);
+            let r = self.stdout.read(&mut self.buf[old..]);
+            self.buf.truncate(old + *r.as_ref().unwrap_or(&0));
+            match r {
+                Ok(0) if old == 0 => return ReadOutcome::Eof,
+                Ok(0) => {
+                    return ReadOutcome::Broken(format!(
+                        "the adapter's stdout ended inside a message: {}",
+                        protocol::quote(&self.buf, 240)
+                    ))
+                }
+                Ok(_) => {}
+                Err(e) if e.kind() == io::ErrorKind::WouldBlock => {
+                    match wait_ready(self.stdout.as_raw_fd(), libc::POLLIN, deadline) {
+                        Ok(true) => {}
+                        Ok(false) => return ReadOutcome::Timeout,
+                        Err(e) => {
+                            return ReadOutcome::Broken(format!(
+                                "waiting for the adapter's stdout failed: {e}"
+                            ))
+                        }
+                    }
+                }
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+                Err(e) => {
+                    return ReadOutcome::Broken(format!("reading the adapter's stdout failed: {e}"))
+                }
+            }
+        }
+    }
 }
 
 /// The last lines of an adapter's stderr, filled by its own thread.
@@ -202,9 +419,13 @@ pub struct Worker {
     display: String,
     log_path: Option<PathBuf>,
     child: Option<Child>,
-    to_adapter: Option<Sender<Vec<u8>>>,
-    from_adapter: Receiver<ReaderEvent>,
-    reader_mode: Option<Sender<ReaderMode>>,
+    pipes: Pipes,
+    /// How stdout is cut into messages: lines until the handshake ends, then the chosen encoding's.
+    framing: Framing,
+    /// Whether the start line went out (then a quit message can be sent).
+    started: bool,
+    /// The request being sent (kept to reuse its allocation).
+    out: Vec<u8>,
     stderr_thread: Option<JoinHandle<()>>,
     tail: StderrTail,
     hello: Hello,
@@ -330,114 +551,6 @@ fn signal_group(pid: u32, sig: libc::c_int) {
     }
 }
 
-fn read_line_capped<R: BufRead>(r: &mut R, max: usize) -> Result<Option<Vec<u8>>, String> {
-    let mut line = Vec::new();
-    loop {
-        let buf = match r.fill_buf() {
-            Ok(b) => b,
-            Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
-            Err(e) => return Err(format!("reading the adapter's stdout failed: {e}")),
-        };
-        if buf.is_empty() {
-            if line.is_empty() {
-                return Ok(None);
-            }
-            return Err(format!(
-                "the adapter's stdout ended inside a line (no final newline): {}",
-                protocol::quote(&line, 240)
-            ));
-        }
-        let (take, done) = match buf.iter().position(|&b| b == b'\n') {
-            Some(i) => (i + 1, true),
-            None => (buf.len(), false),
-        };
-        line.extend_from_slice(&buf[..take]);
-        r.consume(take);
-        if done {
-            return Ok(Some(line));
-        }
-        if line.len() > max {
-            return Err(format!(
-                "the adapter wrote a line longer than {max} bytes without a newline; it starts {}",
-                protocol::quote(&line, 240)
-            ));
-        }
-    }
-}
-
-fn read_frame<R: BufRead>(r: &mut R, max_body: usize) -> Result<Option<Vec<u8>>, String> {
-    let mut prefix = [0u8; 4];
-    let mut got = 0;
-    while got < 4 {
-        match r.read(&mut prefix[got..]) {
-            Ok(0) if got == 0 => return Ok(None),
-            Ok(0) => return Err("the adapter's stdout ended inside a frame header".into()),
-            Ok(k) => got += k,
-            Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
-            Err(e) => return Err(format!("reading the adapter's stdout failed: {e}")),
-        }
-    }
-    let body = protocol::frame_body_len(prefix);
-    if body < protocol::FRAME_HEADER - 4 || body > max_body {
-        let mut shown = prefix.to_vec();
-        if let Ok(more) = r.fill_buf() {
-            shown.extend_from_slice(&more[..more.len().min(120)]);
-        }
-        return Err(format!(
-            "a binary frame announcing {body} bytes (allowed: {} to {max_body}) arrived; is the adapter \
-             printing text to stdout? It starts {}",
-            protocol::FRAME_HEADER - 4,
-            protocol::quote(&shown, 124)
-        ));
-    }
-    let mut frame = vec![0u8; 4 + body];
-    frame[..4].copy_from_slice(&prefix);
-    r.read_exact(&mut frame[4..])
-        .map_err(|e| format!("the adapter's stdout ended inside a frame: {e}"))?;
-    Ok(Some(frame))
-}
-
-fn reader_thread(stdout: impl Read, events: Sender<ReaderEvent>, mode: Receiver<ReaderMode>) {
-    let mut r = BufReader::with_capacity(1 << 16, stdout);
-    let send = |ev| events.send(ev).is_ok();
-    match read_line_capped(&mut r, MAX_HELLO) {
-        Ok(Some(line)) => {
-            if !send(ReaderEvent::Message(line)) {
-                return;
-            }
-        }
-        Ok(None) => {
-            send(ReaderEvent::Eof);
-            return;
-        }
-        Err(m) => {
-            send(ReaderEvent::Broken(m));
-            return;
-        }
-    }
-    let Ok(mode) = mode.recv() else { return };
-    loop {
-        let msg = match mode.encoding {
-            Encoding::Text => read_line_capped(&mut r, mode.max_len),
-            Encoding::Binary => read_frame(&mut r, mode.max_len),
-        };
-        let ok = match msg {
-            Ok(Some(m)) => send(ReaderEvent::Message(m)),
-            Ok(None) => {
-                send(ReaderEvent::Eof);
-                false
-            }
-            Err(m) => {
-                send(ReaderEvent::Broken(m));
-                false
-            }
-        };
-        if !ok {
-            return;
-        }
-    }
-}
-
 fn stderr_thread(stderr: impl Read, mut log: Option<File>, tail: StderrTail) {
     let mut r = BufReader::new(stderr);
     let mut line = Vec::new();
@@ -457,14 +570,6 @@ fn stderr_thread(stderr: impl Read, mut log: Option<File>, tail: StderrTail) {
     }
     if let Some(f) = log.as_mut() {
         let _ = f.flush();
-    }
-}
-
-fn writer_thread(mut stdin: ChildStdin, messages: Receiver<Vec<u8>>) {
-    for m in messages {
-        if stdin.write_all(&m).and_then(|_| stdin.flush()).is_err() {
-            return;
-        }
     }
 }
 
@@ -548,10 +653,12 @@ impl Worker {
             (child.stdin.take(), child.stdout.take(), child.stderr.take());
         #[cfg(target_os = "linux")]
         {
-            use std::os::fd::AsRawFd;
             // Larger pipes mean fewer system calls and context switches for big binary frames; the
             // kernel may refuse (a per-user limit), which only costs speed.
-            let fds = [stdin.as_ref().map(|p| p.as_raw_fd()), stdout.as_ref().map(|p| p.as_raw_fd())];
+            let fds = [
+                stdin.as_ref().map(|p| p.as_raw_fd()),
+                stdout.as_ref().map(|p| p.as_raw_fd()),
+            ];
             for fd in fds.into_iter().flatten() {
                 // SAFETY: fcntl on a pipe descriptor we own; no memory is passed.
                 unsafe { libc::fcntl(fd, libc::F_SETPIPE_SZ, PIPE_SIZE) };
@@ -564,26 +671,14 @@ impl Worker {
             ));
         };
         let tail = StderrTail::default();
-        let (ev_tx, ev_rx) = mpsc::channel();
-        let (mode_tx, mode_rx) = mpsc::channel();
-        let (msg_tx, msg_rx) = mpsc::channel();
-        let name = |what: &str| format!("adapter-{index}-{what}");
         let t = tail.clone();
-        let threads = (
-            thread::Builder::new()
-                .name(name("stderr"))
-                .spawn(move || stderr_thread(stderr, log, t)),
-            thread::Builder::new()
-                .name(name("stdout"))
-                .spawn(move || reader_thread(stdout, ev_tx, mode_rx)),
-            thread::Builder::new()
-                .name(name("stdin"))
-                .spawn(move || writer_thread(stdin, msg_rx)),
-        );
-        let (Ok(stderr_handle), Ok(_), Ok(_)) = threads else {
+        let stderr_handle = thread::Builder::new()
+            .name(format!("adapter-{index}-stderr"))
+            .spawn(move || stderr_thread(stderr, log, t));
+        let Ok(stderr_handle) = stderr_handle else {
             kill_and_reap(&mut child, Duration::ZERO);
             return Err(WorkerError::Start(
-                "could not start the threads serving an adapter".into(),
+                "could not start the thread draining the adapter's stderr".into(),
             ));
         };
         let placeholder = Hello {
@@ -599,9 +694,10 @@ impl Worker {
             display: spec.display.clone(),
             log_path,
             child: Some(child),
-            to_adapter: Some(msg_tx),
-            from_adapter: ev_rx,
-            reader_mode: Some(mode_tx),
+            pipes: Pipes::new(stdin, stdout),
+            framing: Framing::Line { max: MAX_HELLO },
+            started: false,
+            out: Vec::new(),
             stderr_thread: Some(stderr_handle),
             tail,
             hello: placeholder,
@@ -626,22 +722,27 @@ fn kill_and_reap(child: &mut Child, grace: Duration) -> Option<ExitStatus> {
 
 impl Worker {
     fn handshake(&mut self, spec: &WorkerSpec) -> Result<(), WorkerError> {
-        let line = match self.from_adapter.recv_timeout(spec.handshake_timeout) {
-            Ok(ReaderEvent::Message(l)) => l,
-            Ok(ReaderEvent::Eof) | Err(RecvTimeoutError::Disconnected) => {
+        let deadline = Instant::now() + spec.handshake_timeout;
+        let line = match self.pipes.read_message(self.framing, Some(deadline)) {
+            ReadOutcome::Message(end) => {
+                let line = self.pipes.buf[..end].to_vec();
+                self.pipes.consume(end);
+                line
+            }
+            ReadOutcome::Eof => {
                 let status = self.reap_after_eof();
                 return Err(WorkerError::Start(self.describe(&format!(
                     "{} before its hello line",
                     describe_status(status)
                 ))));
             }
-            Ok(ReaderEvent::Broken(m)) => {
+            ReadOutcome::Broken(m) => {
                 self.stop(TERM_GRACE);
                 return Err(WorkerError::Start(
                     self.describe(&format!("sent no valid hello line: {m}")),
                 ));
             }
-            Err(RecvTimeoutError::Timeout) => {
+            ReadOutcome::Timeout => {
                 self.stop(TERM_GRACE);
                 return Err(WorkerError::Start(self.describe(&format!(
                     "sent no hello line within {:.1} s and was stopped (raise the handshake timeout if it \
@@ -666,21 +767,25 @@ impl Worker {
                 return Err(WorkerError::Start(self.describe(&m)));
             }
         };
-        let max_len = match encoding {
-            Encoding::Text => protocol::max_text_line(hello.dim),
-            Encoding::Binary => protocol::max_frame_body(hello.dim),
-        };
-        let mode_sent = self
-            .reader_mode
-            .take()
-            .map(|tx| tx.send(ReaderMode { encoding, max_len }).is_ok());
-        if !self.send(protocol::encode_start(encoding)) || mode_sent != Some(true) {
+        let sent = self
+            .pipes
+            .write_all(&protocol::encode_start(encoding), Some(deadline));
+        if !matches!(sent, Ok(true)) {
             let status = self.reap_after_eof();
             return Err(WorkerError::Start(self.describe(&format!(
                 "{} during the handshake",
                 describe_status(status)
             ))));
         }
+        self.started = true;
+        self.framing = match encoding {
+            Encoding::Text => Framing::Line {
+                max: protocol::max_text_line(hello.dim),
+            },
+            Encoding::Binary => Framing::Frame {
+                max_body: protocol::max_frame_body(hello.dim),
+            },
+        };
         self.hello = hello;
         self.encoding = encoding;
         Ok(())
@@ -706,34 +811,36 @@ impl Worker {
         let op = req.op;
         let id = self.next_id;
         self.next_id += 1;
-        let mut buf = Vec::new();
-        protocol::encode_request(self.encoding, id, req, &mut buf);
-        if !self.send(buf) {
-            return Err(self.died(op));
-        }
-        let event = match timeout {
-            Some(t) => self.from_adapter.recv_timeout(t),
-            None => self
-                .from_adapter
-                .recv()
-                .map_err(|_| RecvTimeoutError::Disconnected),
+        self.out.clear();
+        protocol::encode_request(self.encoding, id, req, &mut self.out);
+        let deadline = timeout.map(|t| Instant::now() + t);
+        let outcome = match self.pipes.write_all(&self.out, deadline) {
+            Ok(true) => self.pipes.read_message(self.framing, deadline),
+            Ok(false) => ReadOutcome::Timeout,
+            // The adapter closed its stdin: it is exiting, or has.
+            Err(_) => ReadOutcome::Eof,
         };
-        match event {
-            Ok(ReaderEvent::Message(bytes)) => {
-                match protocol::decode_reply(self.encoding, &bytes, op, self.hello.dim) {
+        match outcome {
+            ReadOutcome::Message(end) => {
+                let decoded = protocol::decode_reply(
+                    self.encoding,
+                    &self.pipes.buf[..end],
+                    op,
+                    self.hello.dim,
+                );
+                let result = match decoded {
                     Ok((got, reply)) if got == id => Ok(reply),
-                    Ok((got, _)) => Err(self.protocol_failure(
-                        op,
-                        ProtocolError::Malformed(format!(
-                            "the reply carries id {got} but answers request id {id}; received {}",
-                            protocol::quote(&bytes, 240)
-                        )),
-                    )),
-                    Err(e) => Err(self.protocol_failure(op, e)),
-                }
+                    Ok((got, _)) => Err(ProtocolError::Malformed(format!(
+                        "the reply carries id {got} but answers request id {id}; received {}",
+                        protocol::quote(&self.pipes.buf[..end], 240)
+                    ))),
+                    Err(e) => Err(e),
+                };
+                self.pipes.consume(end);
+                result.map_err(|e| self.protocol_failure(op, e))
             }
-            Ok(ReaderEvent::Eof) | Err(RecvTimeoutError::Disconnected) => Err(self.died(op)),
-            Ok(ReaderEvent::Broken(m)) => {
+            ReadOutcome::Eof => Err(self.died(op)),
+            ReadOutcome::Broken(m) => {
                 // A stream cut inside a message usually means the process died while writing.
                 let pid = self.child.as_ref().map(|c| c.id());
                 if pid.is_some_and(|p| wait_exit(p, Duration::from_millis(200))) {
@@ -742,7 +849,7 @@ impl Worker {
                     Err(self.protocol_failure(op, ProtocolError::Malformed(m)))
                 }
             }
-            Err(RecvTimeoutError::Timeout) => {
+            ReadOutcome::Timeout => {
                 let secs = timeout.map_or(0.0, |t| t.as_secs_f64());
                 self.stop(TERM_GRACE);
                 Err(WorkerError::Died(self.describe(&format!(
@@ -756,18 +863,15 @@ impl Worker {
 
     /// Asks the adapter to quit and closes its stdin; [`Worker::finish_quit`] then waits for it.
     pub fn begin_quit(&mut self) {
-        if self.reader_mode.is_none() {
+        if self.started && self.child.is_some() {
             let mut buf = Vec::new();
-            let id = self.next_id;
-            protocol::encode_request(
-                self.encoding,
-                id,
-                &Request::new(Op::Quit, &[], &[]),
-                &mut buf,
-            );
-            self.send(buf);
+            let quit = Request::new(Op::Quit, &[], &[]);
+            protocol::encode_request(self.encoding, self.next_id, &quit, &mut buf);
+            let _ = self
+                .pipes
+                .write_all(&buf, Some(Instant::now() + Duration::from_millis(200)));
         }
-        self.to_adapter = None;
+        self.pipes.close_stdin();
     }
 
     /// Waits until `deadline` for the adapter to exit after [`Worker::begin_quit`], then kills what is
@@ -783,15 +887,9 @@ impl Worker {
         }
     }
 
-    fn send(&mut self, msg: Vec<u8>) -> bool {
-        self.to_adapter
-            .as_ref()
-            .is_some_and(|tx| tx.send(msg).is_ok())
-    }
-
     /// Stops the process now (it misbehaved): SIGTERM, a short grace, SIGKILL, reap.
     fn stop(&mut self, grace: Duration) -> Option<ExitStatus> {
-        self.to_adapter = None;
+        self.pipes.close_stdin();
         let status = self.child.as_mut().and_then(|c| kill_and_reap(c, grace));
         self.child = None;
         status
@@ -799,7 +897,7 @@ impl Worker {
 
     /// The adapter closed its stdout: give it a moment to exit by itself, then reap it.
     fn reap_after_eof(&mut self) -> Option<ExitStatus> {
-        self.to_adapter = None;
+        self.pipes.close_stdin();
         let status = self.child.as_mut().and_then(|c| {
             wait_exit(c.id(), Duration::from_secs(1));
             kill_and_reap(c, TERM_GRACE)
