@@ -1,5 +1,10 @@
-//! One adapter process: spawning it, the handshake, the threads that drain its pipes, requests with a
-//! timeout, and stopping it without leaving a zombie or a stray process behind.
+//! One adapter process: spawning it, the handshake, requests with a deadline, and stopping it without
+//! leaving a zombie or a stray process behind.
+//!
+//! Requests and replies go through the adapter's stdin and stdout from the calling thread: both pipes
+//! are non-blocking and every read and write waits with `poll` until the request's deadline, so neither
+//! a silent adapter nor one that stops reading can block varpost past its timeout. Only stderr has a
+//! thread of its own, which copies it to the log file and keeps its last lines for error messages.
 //!
 //! Each adapter runs in a process group of its own, so that a launcher (`mpirun ...`) and everything it
 //! started can be signalled together, and so that the terminal's Ctrl-C reaches varpost only, which then
@@ -452,13 +457,18 @@ fn spawn_child(cmd: Command) -> io::Result<Child> {
         Mutex::new(tx)
     });
     let (back_tx, back_rx) = mpsc::sync_channel(1);
-    let sent = spawner.lock().map(|tx| tx.send((cmd, back_tx)));
-    match sent {
-        Ok(Ok(())) => back_rx
-            .recv()
-            .unwrap_or_else(|_| Err(io::Error::other("the adapter spawner thread stopped"))),
-        Ok(Err(mpsc::SendError((mut cmd, _)))) => cmd.spawn(),
-        Err(_) => Err(io::Error::other("the adapter spawner lock is poisoned")),
+    let Ok(tx) = spawner.lock() else {
+        return Err(io::Error::other("the adapter spawner lock is poisoned"));
+    };
+    match tx.send((cmd, back_tx)) {
+        Ok(()) => {
+            drop(tx);
+            back_rx
+                .recv()
+                .unwrap_or_else(|_| Err(io::Error::other("the adapter spawner thread stopped")))
+        }
+        // No spawner thread: fork from this one.
+        Err(mpsc::SendError((mut cmd, _))) => cmd.spawn(),
     }
 }
 
