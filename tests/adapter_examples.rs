@@ -231,6 +231,28 @@ fn c_advection_matches_its_closed_form_in_both_encodings() {
     }
 }
 
+/// A state larger than the pipes (n = 200 000: 1.6 MB per vector), so that requests and replies are
+/// written and read in many pieces, in both encodings.
+#[test]
+fn c_advection_with_a_large_state() {
+    let Some(bin) = c_example() else { return };
+    let n = 200_000;
+    let model = Advection::new(n, 2, 0.5);
+    for choice in [EncodingChoice::Text, EncodingChoice::Binary] {
+        let mut cfg = AdapterConfig::new(format!("'{}' {n} 2 0.5", bin.display()));
+        cfg.encoding = choice;
+        let p = start(&cfg);
+        let x: Vec<f64> = (0..n).map(|i| (i as f64 * 0.01).sin()).collect();
+        let (jb, jo, g0) = model.eval(&x);
+        let mut g = vec![0.0; n];
+        for _ in 0..2 {
+            let j = p.cost_grad(&x, &mut g).unwrap();
+            assert!(rel(j, jb + jo) < 1e-12, "{choice:?}: {j} vs {}", jb + jo);
+            close(&g, &g0, 1e-12);
+        }
+    }
+}
+
 #[test]
 fn c_advection_under_mpirun_as_launcher() {
     let Some(bin) = c_example() else { return };

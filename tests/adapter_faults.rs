@@ -325,3 +325,20 @@ fn the_minimal_adapter_in_the_protocol_document_works() {
     drop(p);
     let _ = std::fs::remove_file(&path);
 }
+
+#[test]
+fn an_adapter_that_stops_reading_cannot_block_a_large_request() {
+    let mut c = config("deaf");
+    c.eval_timeout = Some(Duration::from_millis(500));
+    c.max_restarts = 0;
+    let p = start(&c);
+    let x = vec![0.5; 3_000_000];
+    let t = Instant::now();
+    let m = failed_message(p.cost(&x).unwrap_err());
+    // The 24 MB request fills the pipe; the write waits only until the request's deadline.
+    assert!(t.elapsed() < Duration::from_secs(5), "{:?}", t.elapsed());
+    assert!(
+        m.contains("within 0.5 s") && m.contains("not reading any more"),
+        "{m}"
+    );
+}

@@ -3,7 +3,7 @@
 J(x) = 1/2 sum_i (x_i - c_i)^2 / s_i^2 with c_i = i + 1 and s_i = 1 + i/2, i = 0..3.
 
 Modes: ok, crash_once STATE_FILE, crash_always, segfault, hang, garbage, wrong_version, wrong_length,
-wrong_id, stray_stdout, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
+wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
 a NaN cost where 100 < x_0 <= 1000), slow_start.
 """
 import json
@@ -71,6 +71,13 @@ if mode == "wrong_version":
     raw_out.flush()
     sys.stdin.readline()
     sys.exit(0)
+if mode == "deaf":
+    # Declares a large state, then never reads a request: varpost's write must not block past its timeout.
+    raw_out.write(b'{"hello":"varpost-adapter","protocol":1,"dim":3000000,"encodings":["binary"]}\n')
+    raw_out.flush()
+    sys.stdin.readline()
+    print("not reading any more", file=sys.stderr, flush=True)
+    time.sleep(3600)
 if mode == "stray_stdout":
     raw_out.write(b"Loading model fields...\n")
     raw_out.flush()
