@@ -79,7 +79,9 @@ fn main() {
     // `cargo bench` passes --bench; `cargo test --all-targets` runs this binary without it, and timing
     // has no place in the test suite.
     if !std::env::args().any(|a| a == "--bench") {
-        println!("adapter_overhead: a benchmark; run it with `cargo bench --bench adapter_overhead`");
+        println!(
+            "adapter_overhead: a benchmark; run it with `cargo bench --bench adapter_overhead`"
+        );
         return;
     }
     let bin = build_trivial();

@@ -1118,16 +1118,12 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
             head,
         ));
     }
-    if op == Op::CostGrad {
-        if payload.is_empty() {
-            return Err(malformed("an empty reply to a cost_grad request", head));
-        }
-        let grad = get_f64s(&payload[8..]);
-        check_len("gradient", &grad, dim)?;
-        let cost = get_f64s(&payload[..8])[0];
-        return Ok((id, Reply::CostGrad { cost, grad }));
-    }
-    let vals = get_f64s(payload);
+    // The gradient is decoded straight from the payload (no copy of a large vector).
+    let vals = if op == Op::CostGrad {
+        get_f64s(&payload[..payload.len().min(8)])
+    } else {
+        get_f64s(payload)
+    };
     let m = vals.len();
     let fixed = |want: usize, what: &'static str| {
         if m != want {
@@ -1140,6 +1136,17 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
         Ok(())
     };
     let reply = match op {
+        Op::CostGrad => {
+            if m == 0 {
+                return Err(malformed("an empty reply to a cost_grad request", head));
+            }
+            let grad = get_f64s(&payload[8..]);
+            check_len("gradient", &grad, dim)?;
+            Reply::CostGrad {
+                cost: vals[0],
+                grad,
+            }
+        }
         Op::Cost => {
             fixed(1, "cost reply (values)")?;
             Reply::Cost { cost: vals[0] }
@@ -1167,7 +1174,7 @@ fn decode_binary_reply(frame: &[u8], op: Op, dim: usize) -> Result<(u64, Reply),
             check_len("prior product", &vals, dim)?;
             Reply::Vector { out: vals }
         }
-        Op::CostGrad | Op::Quit => return Err(malformed("a quit request has no reply", head)),
+        Op::Quit => return Err(malformed("a quit request has no reply", head)),
     };
     Ok((id, reply))
 }
