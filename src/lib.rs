@@ -5,13 +5,17 @@
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
 pub mod adapter;
+pub mod adapt;
 pub mod cli;
+pub mod diagnostics;
 pub mod error;
+pub mod interrupt;
 pub mod optimize;
 pub mod output;
 pub mod pipeline;
 pub mod precond;
 pub mod problem;
+pub mod sampler;
 
 pub use error::{Error, EvalError, Result};
 pub use problem::{Counted, EvalCounts, Problem};
