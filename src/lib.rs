@@ -4,8 +4,8 @@
 //! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
-pub mod adapter;
 pub mod adapt;
+pub mod adapter;
 pub mod cli;
 pub mod diagnostics;
 pub mod error;

@@ -239,9 +239,15 @@ fn ctrl_c_leaves_no_adapter_running() {
     }
     if !ended() {
         ctrl_c();
-        wait_until("varpost ends after a second Ctrl-C", Duration::from_secs(5), &mut ended);
+        wait_until(
+            "varpost ends after a second Ctrl-C",
+            Duration::from_secs(5),
+            &mut ended,
+        );
     }
-    wait_until("the adapters are gone", Duration::from_secs(5), || adapters().is_empty());
+    wait_until("the adapters are gone", Duration::from_secs(5), || {
+        adapters().is_empty()
+    });
 }
 
 /// Stops the varpost run if the test fails before the interrupt.

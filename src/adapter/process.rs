@@ -120,7 +120,7 @@ pub fn split_command(line: &str) -> Result<Vec<String>, String> {
 
 /// How to start one adapter process.
 #[derive(Debug, Clone)]
-pub struct WorkerSpec {
+pub(crate) struct WorkerSpec {
     /// Launcher words followed by the command's words.
     pub argv: Vec<String>,
     /// The command as the user wrote it (launcher included), for messages.
@@ -144,7 +144,7 @@ impl WorkerSpec {
 
 /// Why a request or a start failed.
 #[derive(Debug, Clone, PartialEq)]
-pub enum WorkerError {
+pub(crate) enum WorkerError {
     /// The process exited, was killed, closed its stdout, or did not answer in time. It is gone; a new one
     /// may be started.
     Died(String),
@@ -419,7 +419,7 @@ impl StderrTail {
 }
 
 /// One running adapter process after a successful handshake.
-pub struct Worker {
+pub(crate) struct Worker {
     index: usize,
     display: String,
     log_path: Option<PathBuf>,
