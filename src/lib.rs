@@ -5,6 +5,7 @@
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
 pub mod adapt;
+pub mod adapter;
 pub mod cli;
 pub mod diagnostics;
 pub mod error;

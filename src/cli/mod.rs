@@ -96,8 +96,14 @@ pub enum Command {
 #[derive(Debug, Args)]
 pub struct ProblemArgs {
     /// A built-in problem: lorenz96, linear-gaussian or burgers.
-    #[arg(long)]
+    #[arg(long, conflicts_with = "adapter")]
     pub problem: Option<String>,
+    /// Your own code: a command that speaks the adapter protocol (adapters/PROTOCOL.md), split like a
+    /// shell would but run without one, e.g. --adapter "python3 model.py --config run.nml".
+    #[arg(long, value_name = "COMMAND")]
+    pub adapter: Option<String>,
+    #[command(flatten)]
+    pub adapter_opts: AdapterArgs,
     /// Problem settings as key=value (repeatable), e.g. --set obs_op=square --set window=12.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     pub set: Vec<String>,
@@ -172,6 +178,71 @@ impl ChainArgs {
         };
         c.validate()?;
         Ok((c, self.metric.parse::<Metric>()?))
+    }
+}
+
+/// How adapter processes are run (with --adapter).
+#[derive(Debug, Args)]
+pub struct AdapterArgs {
+    /// Number of adapter processes; each serves one evaluation at a time.
+    #[arg(long, default_value_t = 1, value_name = "K")]
+    pub workers: usize,
+    /// Words put before the adapter command, e.g. --launcher "mpirun -n 4".
+    #[arg(long, value_name = "PREFIX")]
+    pub launcher: Option<String>,
+    /// Seconds one evaluation may take before the adapter is killed and restarted (0: no limit).
+    #[arg(long, default_value_t = 600.0, value_name = "SECS")]
+    pub eval_timeout: f64,
+    /// Seconds an adapter may take to start and send its hello line.
+    #[arg(long, default_value_t = 60.0, value_name = "SECS")]
+    pub handshake_timeout: f64,
+    /// Restarts of a crashed or hung adapter allowed per evaluation before the run stops.
+    #[arg(long, default_value_t = 3, value_name = "N")]
+    pub restarts: u32,
+    /// Encoding after the handshake: auto, text or binary.
+    #[arg(long, default_value = "auto", value_name = "auto|text|binary")]
+    pub encoding: String,
+}
+
+impl AdapterArgs {
+    fn config(
+        &self,
+        command: &str,
+        log_dir: &std::path::Path,
+    ) -> Result<crate::adapter::AdapterConfig> {
+        use crate::adapter::{AdapterConfig, EncodingChoice};
+        let secs = |name: &str, v: f64| -> Result<f64> {
+            if v.is_finite() && v >= 0.0 {
+                Ok(v)
+            } else {
+                Err(Error::Config(format!(
+                    "--{name} {v}: give a number of seconds, 0 or more"
+                )))
+            }
+        };
+        let mut c = AdapterConfig::new(command);
+        c.workers = self.workers;
+        c.launcher = self.launcher.clone();
+        let t = secs("eval-timeout", self.eval_timeout)?;
+        c.eval_timeout = (t > 0.0).then(|| std::time::Duration::from_secs_f64(t));
+        let h = secs("handshake-timeout", self.handshake_timeout)?;
+        if h == 0.0 {
+            return Err(Error::Config("--handshake-timeout must be positive".into()));
+        }
+        c.handshake_timeout = std::time::Duration::from_secs_f64(h);
+        c.max_restarts = self.restarts;
+        c.log_dir = Some(log_dir.to_path_buf());
+        c.encoding = match self.encoding.as_str() {
+            "auto" => EncodingChoice::Auto,
+            "text" => EncodingChoice::Text,
+            "binary" => EncodingChoice::Binary,
+            o => {
+                return Err(Error::Config(format!(
+                    "--encoding {o}: use auto, text or binary"
+                )))
+            }
+        };
+        Ok(c)
     }
 }
 
@@ -271,13 +342,24 @@ impl HessianArgs {
 
 impl ProblemArgs {
     fn source(&self) -> Result<ProblemSource> {
+        if let Some(cmd) = &self.adapter {
+            if !self.set.is_empty() {
+                return Err(Error::Config(
+                    "--set configures built-in problems; pass settings to your adapter in its command"
+                        .into(),
+                ));
+            }
+            return Ok(ProblemSource::Adapter(
+                self.adapter_opts.config(cmd, &self.out)?,
+            ));
+        }
         match &self.problem {
             Some(name) => Ok(ProblemSource::Builtin {
                 name: name.clone(),
                 settings: self.set.clone(),
             }),
             None => Err(Error::Config(format!(
-                "say which problem to run: --problem NAME (built-in: {})",
+                "say which problem to run: --problem NAME (built-in: {}) or --adapter \"COMMAND\"",
                 crate::problem::builtin::NAMES.join(", ")
             ))),
         }

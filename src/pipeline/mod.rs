@@ -5,6 +5,7 @@
 
 use std::path::{Path, PathBuf};
 
+use crate::adapter::{AdapterConfig, AdapterProblem};
 use crate::error::{Error, Result};
 use crate::optimize::{find_map, MapConfig, MapResult};
 use crate::output::summary::{CheckSummary, LaplaceSummary, MapSummary, ReferenceSummary};
@@ -26,6 +27,8 @@ pub use sample::{read_run, run_sample, Metric, SampleOutcome, SampleRunConfig};
 pub enum ProblemSource {
     /// A built-in problem by name with its settings (`key=value`).
     Builtin { name: String, settings: Vec<String> },
+    /// The user's code behind the subprocess adapter protocol.
+    Adapter(AdapterConfig),
 }
 
 /// A problem ready to run: counted, with what the tool knows about it.
@@ -97,6 +100,27 @@ pub fn load(source: &ProblemSource) -> Result<Loaded> {
                     variance: r.variance,
                 }),
                 truth,
+            })
+        }
+        ProblemSource::Adapter(config) => {
+            let p = AdapterProblem::start(config)?;
+            let description = match p.label() {
+                Some(l) => format!("{l} (adapter `{}`)", config.command),
+                None => format!("adapter `{}`", config.command),
+            };
+            let settings = serde_json::json!({
+                "adapter": config.command,
+                "launcher": config.launcher,
+                "workers": config.workers,
+                "encoding": p.encoding().name(),
+            });
+            Ok(Loaded {
+                problem: Counted::new(Replay::new(Box::new(p) as Box<dyn Problem>)),
+                name: "adapter".into(),
+                description,
+                settings,
+                reference: None,
+                truth: None,
             })
         }
     }
