@@ -10,7 +10,7 @@ use std::ops::Range;
 use std::path::Path;
 use std::sync::OnceLock;
 
-use plotters::coord::ranged1d::{AsRangedCoord, Ranged, ValueFormatter};
+use plotters::coord::ranged1d::Ranged;
 use plotters::coord::types::RangedCoordf64;
 use plotters::prelude::*;
 
@@ -23,8 +23,8 @@ const FAMILY: &str = "sans-serif";
 
 /// Width of every picture, in pixels.
 pub const WIDTH: u32 = 1100;
-/// Height of the title band of the multi-panel pictures.
-pub const TITLE_HEIGHT: u32 = 50;
+/// Height of the band over every picture holding its title and its colour key.
+pub const TITLE_HEIGHT: u32 = 84;
 /// Height of one panel of the trace and autocorrelation pictures.
 pub const PANEL_HEIGHT: u32 = 260;
 /// Size of one histogram panel of the marginal picture (three per row).
@@ -160,19 +160,131 @@ fn caption_font() -> (&'static str, u32) {
     (FAMILY, 20)
 }
 
-/// Picture title band and the area under it.
-fn titled<'a>(
+/// How an entry of a colour key is drawn.
+#[derive(Clone, Copy)]
+enum Mark {
+    Line,
+    Bar,
+}
+
+/// Draws the title and, under it, a colour key (the legend, kept out of the data), then returns the
+/// area below.
+fn header<'a>(
     root: &DrawingArea<BitMapBackend<'a>, plotters::coord::Shift>,
     title: &str,
+    key: &[(String, RGBColor, Mark)],
 ) -> std::result::Result<DrawingArea<BitMapBackend<'a>, plotters::coord::Shift>, String> {
     let (top, rest) = root.split_vertically(TITLE_HEIGHT);
     top.draw(&Text::new(
         title.to_string(),
-        (20, 14),
+        (20, 12),
         (FAMILY, 26).into_font().color(&BLACK),
     ))
     .map_err(msg)?;
+    let font: TextStyle = (FAMILY, 16).into_font().color(&BLACK);
+    let (mut x, y) = (24i32, 60i32);
+    for (i, (label, colour, mark)) in key.iter().enumerate() {
+        let (w, _) = top.estimate_text_size(label, &font).map_err(msg)?;
+        if x + 34 + w as i32 > WIDTH as i32 - 20 {
+            let more = format!("... {} more", key.len() - i);
+            top.draw(&Text::new(more, (x, y - 9), font.clone()))
+                .map_err(msg)?;
+            break;
+        }
+        match mark {
+            Mark::Line => top
+                .draw(&PathElement::new(
+                    vec![(x, y), (x + 26, y)],
+                    colour.stroke_width(4),
+                ))
+                .map_err(msg)?,
+            Mark::Bar => top
+                .draw(&Rectangle::new(
+                    [(x, y - 7), (x + 26, y + 7)],
+                    colour.mix(0.45).filled(),
+                ))
+                .map_err(msg)?,
+        }
+        top.draw(&Text::new(label.clone(), (x + 32, y - 8), font.clone()))
+            .map_err(msg)?;
+        x += 32 + w as i32 + 28;
+    }
     Ok(rest)
+}
+
+/// The key of one line per chain; colours repeat after the palette's eight.
+fn chain_key(n_chains: usize) -> Vec<(String, RGBColor, Mark)> {
+    (0..n_chains)
+        .map(|c| (format!("chain {c}"), chain_colour(c), Mark::Line))
+        .collect()
+}
+
+/// A tick-label formatter for an axis spanning `range`: as many decimals as the tick spacing needs,
+/// scientific notation for very small or large spacings, and no "-0".
+fn tick_formatter(range: &Range<f64>) -> impl Fn(&f64) -> String {
+    let step = ((range.end - range.start).abs() / 10.0).max(f64::MIN_POSITIVE);
+    let decimals = (-step.log10().floor()).clamp(0.0, 12.0) as usize;
+    let scientific = !(1e-4..1e6).contains(&step);
+    move |v: &f64| {
+        let v = if v.abs() < step * 1e-6 { 0.0 } else { *v };
+        if scientific {
+            format!("{v:.2e}")
+        } else {
+            format!("{v:.decimals$}")
+        }
+    }
+}
+
+/// Axes of a linear chart: descriptions, readable tick labels, a light grid.
+fn draw_axes(
+    chart: &mut ChartContext<'_, BitMapBackend<'_>, Cartesian2d<RangedCoordf64, RangedCoordf64>>,
+    x_desc: &str,
+    y_desc: &str,
+    integer_x: bool,
+    small: bool,
+) -> DrawResult {
+    let (label, desc) = if small { (13, 14) } else { (15, 16) };
+    let x_fmt = tick_formatter(&chart.x_range());
+    let y_fmt = tick_formatter(&chart.y_range());
+    let whole = |v: &f64| format!("{v:.0}");
+    let mut mesh = chart.configure_mesh();
+    mesh.x_desc(x_desc)
+        .y_desc(y_desc)
+        .label_style((FAMILY, label))
+        .axis_desc_style((FAMILY, desc))
+        .bold_line_style(RGBColor(225, 225, 225))
+        .max_light_lines(0)
+        .y_label_formatter(&y_fmt);
+    if integer_x {
+        mesh.x_label_formatter(&whole);
+    } else {
+        mesh.x_label_formatter(&x_fmt);
+    }
+    if small {
+        mesh.x_labels(5).y_labels(5);
+    }
+    mesh.draw().map_err(msg)
+}
+
+/// A panel's caption: its label, and which chains (if any) have no finite value to draw, so they are
+/// not silently missing from the picture.
+fn panel_caption(series: &ChainSeries<'_>) -> String {
+    let empty: Vec<String> = series
+        .chains
+        .iter()
+        .enumerate()
+        .filter(|(_, c)| !c.iter().any(|v| v.is_finite()))
+        .map(|(i, _)| i.to_string())
+        .collect();
+    match empty.len() {
+        0 => series.label.to_string(),
+        1 => format!("{} (chain {}: no finite values)", series.label, empty[0]),
+        _ => format!(
+            "{} (chains {}: no finite values)",
+            series.label,
+            empty.join(", ")
+        ),
+    }
 }
 
 /// Panels of per-chain lines (trace plots and autocorrelations share this).
@@ -183,8 +295,10 @@ fn chain_panels(
     x_desc: &str,
     y_desc: &str,
     y_fixed: Option<Range<f64>>,
+    stroke: u32,
 ) -> DrawResult {
-    let body = titled(root, title)?;
+    let n_chains = components.iter().map(|c| c.chains.len()).max().unwrap_or(0);
+    let body = header(root, title, &chain_key(n_chains))?;
     let panels = body.split_evenly((components.len().max(1), 1));
     for (series, area) in components.iter().zip(panels.iter()) {
         let len = series.chains.iter().map(Vec::len).max().unwrap_or(0);
@@ -202,22 +316,14 @@ fn chain_panels(
             None => padded_range(series.chains.iter().flatten()),
         };
         let mut chart = ChartBuilder::on(area)
-            .caption(series.label, caption_font())
+            .caption(panel_caption(series), caption_font())
             .margin(8)
             .margin_right(24)
             .x_label_area_size(42)
             .y_label_area_size(80)
             .build_cartesian_2d(x_range.clone(), y_range)
             .map_err(msg)?;
-        chart
-            .configure_mesh()
-            .x_desc(x_desc)
-            .y_desc(y_desc)
-            .label_style((FAMILY, 15))
-            .axis_desc_style((FAMILY, 16))
-            .light_line_style(RGBColor(235, 235, 235))
-            .draw()
-            .map_err(msg)?;
+        draw_axes(&mut chart, x_desc, y_desc, true, false)?;
         if y_fixed.is_some() {
             chart
                 .draw_series(LineSeries::new(
@@ -227,42 +333,20 @@ fn chain_panels(
                 .map_err(msg)?;
         }
         for (c, chain) in series.chains.iter().enumerate() {
-            let colour = chain_colour(c);
-            let style = colour.mix(0.85).stroke_width(1);
-            let mut first = true;
-            let runs = runs(chain);
-            let n_runs = runs.len();
-            for run in runs {
-                let drawn = chart
-                    .draw_series(LineSeries::new(run, style))
-                    .map_err(msg)?;
-                if first {
-                    drawn.label(format!("chain {c}")).legend(move |(x, y)| {
-                        PathElement::new(vec![(x, y), (x + 20, y)], colour.stroke_width(3))
-                    });
-                    first = false;
+            let style = chain_colour(c).mix(0.85).stroke_width(stroke);
+            for run in runs(chain) {
+                if let [p] = run[..] {
+                    // A lone finite value between gaps: a dot, as a line of one point is invisible.
+                    chart
+                        .draw_series([Circle::new(p, 2, style.filled())])
+                        .map_err(msg)?;
+                } else {
+                    chart
+                        .draw_series(LineSeries::new(run, style))
+                        .map_err(msg)?;
                 }
             }
-            if n_runs == 0 {
-                // A chain with no finite value still gets its legend entry, so it is not silently
-                // missing from the picture.
-                chart
-                    .draw_series(std::iter::empty::<PathElement<(f64, f64)>>())
-                    .map_err(msg)?
-                    .label(format!("chain {c} (no finite values)"))
-                    .legend(move |(x, y)| {
-                        PathElement::new(vec![(x, y), (x + 20, y)], colour.stroke_width(3))
-                    });
-            }
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK.mix(0.5))
-            .label_font((FAMILY, 14))
-            .draw()
-            .map_err(msg)?;
     }
     Ok(())
 }
@@ -282,6 +366,7 @@ pub fn trace_plot(path: &Path, components: &[ChainSeries<'_>]) -> Result<(u32, u
             "draw (after warm-up)",
             "value",
             None,
+            1,
         )
     })
 }
@@ -301,6 +386,7 @@ pub fn autocorrelation_plot(path: &Path, components: &[ChainSeries<'_>]) -> Resu
             "lag (draws)",
             "autocorrelation",
             Some(-0.2..1.05),
+            2,
         )
     })
 }
@@ -335,10 +421,21 @@ pub fn marginal_plot(path: &Path, marginals: &[Marginal<'_>]) -> Result<(u32, u3
     let cols = 3usize;
     let rows = marginals.len().div_ceil(cols).max(1);
     let size = (WIDTH, TITLE_HEIGHT + MARGINAL_PANEL.1 * rows as u32);
+    let (bar, laplace) = (PALETTE[0], PALETTE[1]);
     render(path, size, |root| {
-        let body = titled(
+        let key = [
+            ("ensemble histogram".to_string(), bar, Mark::Bar),
+            (
+                "Laplace Gaussian (analysis, inverse-Hessian variance)".to_string(),
+                laplace,
+                Mark::Line,
+            ),
+            ("analysis (MAP)".to_string(), BLACK, Mark::Line),
+        ];
+        let body = header(
             root,
-            "Marginal posteriors: ensemble histogram vs Laplace Gaussian at the analysis",
+            "Marginal posteriors against the Laplace approximation",
+            &key,
         )?;
         let panels = body.split_evenly((rows, cols));
         for (m, area) in marginals.iter().zip(panels.iter()) {
@@ -355,68 +452,41 @@ pub fn marginal_plot(path: &Path, marginals: &[Marginal<'_>]) -> Result<(u32, u3
             let bins = ((2.0 * (n as f64).cbrt()).ceil() as usize).clamp(10, 80);
             let dens = density_histogram(&pooled, &x_range, bins);
             let peak = sd.map_or(0.0, |s| gauss_pdf(m.analysis, m.analysis, s));
-            let y_max = dens.iter().copied().fold(peak, f64::max).max(1e-300) * 1.3;
+            let y_max = dens.iter().copied().fold(peak, f64::max).max(1e-300) * 1.1;
+            let caption = match sd {
+                Some(_) => format!("{} ({n} draws)", m.series.label),
+                None => format!("{} ({n} draws; no Laplace)", m.series.label),
+            };
             let mut chart = ChartBuilder::on(area)
-                .caption(m.series.label, (FAMILY, 18))
+                .caption(caption, (FAMILY, 17))
                 .margin(8)
-                .margin_right(16)
+                .margin_right(18)
                 .x_label_area_size(40)
                 .y_label_area_size(64)
                 .build_cartesian_2d(x_range.clone(), 0.0..y_max)
                 .map_err(msg)?;
-            chart
-                .configure_mesh()
-                .x_labels(5)
-                .y_labels(5)
-                .x_desc("value")
-                .y_desc("density")
-                .label_style((FAMILY, 13))
-                .axis_desc_style((FAMILY, 14))
-                .light_line_style(RGBColor(235, 235, 235))
-                .draw()
-                .map_err(msg)?;
+            draw_axes(&mut chart, "value", "density", false, true)?;
             let w = (x_range.end - x_range.start) / bins as f64;
-            let fill = PALETTE[0].mix(0.45).filled();
             chart
                 .draw_series(dens.iter().enumerate().map(|(k, &d)| {
                     let x0 = x_range.start + k as f64 * w;
-                    Rectangle::new([(x0, 0.0), (x0 + w, d)], fill)
+                    Rectangle::new([(x0, 0.0), (x0 + w, d)], bar.mix(0.45).filled())
                 }))
-                .map_err(msg)?
-                .label(format!("ensemble ({n} draws)"))
-                .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 16, y + 5)], fill));
+                .map_err(msg)?;
             if let Some(s) = sd {
-                let curve: Vec<(f64, f64)> = (0..=200)
-                    .map(|k| {
-                        let x = x_range.start + (x_range.end - x_range.start) * k as f64 / 200.0;
-                        (x, gauss_pdf(x, m.analysis, s))
-                    })
-                    .collect();
-                let red = PALETTE[1];
+                let curve = (0..=200).map(|k| {
+                    let x = x_range.start + (x_range.end - x_range.start) * k as f64 / 200.0;
+                    (x, gauss_pdf(x, m.analysis, s))
+                });
                 chart
-                    .draw_series(LineSeries::new(curve, red.stroke_width(2)))
-                    .map_err(msg)?
-                    .label("Laplace")
-                    .legend(move |(x, y)| {
-                        PathElement::new(vec![(x, y), (x + 16, y)], red.stroke_width(2))
-                    });
+                    .draw_series(LineSeries::new(curve, laplace.stroke_width(2)))
+                    .map_err(msg)?;
             }
-            let black = BLACK;
             chart
                 .draw_series(LineSeries::new(
                     [(m.analysis, 0.0), (m.analysis, y_max)],
-                    black.mix(0.7).stroke_width(1),
+                    BLACK.mix(0.8).stroke_width(1),
                 ))
-                .map_err(msg)?
-                .label("analysis")
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], black));
-            chart
-                .configure_series_labels()
-                .position(SeriesLabelPosition::UpperRight)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK.mix(0.5))
-                .label_font((FAMILY, 12))
-                .draw()
                 .map_err(msg)?;
         }
         Ok(())
@@ -459,46 +529,59 @@ pub fn std_plot(
     let lo = positive().fold(f64::INFINITY, |a, &b| a.min(b));
     let hi = positive().fold(f64::NEG_INFINITY, |a, &b| a.max(b));
     let x_range = -0.5..(n.max(1) as f64 - 0.5);
+    let key: Vec<(String, RGBColor, Mark)> = lines
+        .iter()
+        .map(|(l, _, c)| (l.to_string(), *c, Mark::Line))
+        .collect();
     render(path, STD_SIZE, |root| {
-        let body = titled(root, "Standard deviation per component")?;
+        let body = header(root, "Standard deviation per component", &key)?;
+        let mut builder = ChartBuilder::on(&body);
+        builder
+            .margin(10)
+            .margin_right(30)
+            .x_label_area_size(46)
+            .y_label_area_size(90);
         if lo.is_finite() && hi / lo > 30.0 {
-            let y = (lo / 1.5..hi * 1.5).log_scale();
-            std_chart(&body, x_range, y, &lines)
+            let mut chart = builder
+                .build_cartesian_2d(x_range, (lo / 1.5..hi * 1.5).log_scale())
+                .map_err(msg)?;
+            let whole = |v: &f64| format!("{v:.0}");
+            chart
+                .configure_mesh()
+                .x_desc("component index")
+                .y_desc("standard deviation (log scale)")
+                .label_style((FAMILY, 15))
+                .axis_desc_style((FAMILY, 16))
+                .bold_line_style(RGBColor(225, 225, 225))
+                .max_light_lines(0)
+                .x_label_formatter(&whole)
+                .draw()
+                .map_err(msg)?;
+            std_lines(&mut chart, &lines)
         } else {
-            let top = if hi.is_finite() { hi * 1.15 } else { 1.0 };
-            std_chart(&body, x_range, 0.0..top, &lines)
+            let top = if hi.is_finite() { hi * 1.1 } else { 1.0 };
+            let mut chart = builder.build_cartesian_2d(x_range, 0.0..top).map_err(msg)?;
+            draw_axes(
+                &mut chart,
+                "component index",
+                "standard deviation",
+                true,
+                false,
+            )?;
+            std_lines(&mut chart, &lines)
         }
     })
 }
 
-fn std_chart<Y>(
-    area: &DrawingArea<BitMapBackend<'_>, plotters::coord::Shift>,
-    x_range: Range<f64>,
-    y_range: Y,
+/// The lines (and, for up to 100 components, the points) of [`std_plot`].
+fn std_lines<Y>(
+    chart: &mut ChartContext<'_, BitMapBackend<'_>, Cartesian2d<RangedCoordf64, Y>>,
     lines: &[(&str, &[f64], RGBColor)],
 ) -> DrawResult
 where
-    Y: AsRangedCoord<Value = f64>,
-    Y::CoordDescType: Ranged<ValueType = f64> + ValueFormatter<f64>,
+    Y: Ranged<ValueType = f64>,
 {
-    let n = lines.first().map_or(0, |l| l.1.len());
-    let mut chart = ChartBuilder::on(area)
-        .margin(10)
-        .margin_right(30)
-        .x_label_area_size(46)
-        .y_label_area_size(90)
-        .build_cartesian_2d::<RangedCoordf64, Y::CoordDescType>(x_range.into(), y_range.into())
-        .map_err(msg)?;
-    chart
-        .configure_mesh()
-        .x_desc("component index")
-        .y_desc("standard deviation")
-        .label_style((FAMILY, 15))
-        .axis_desc_style((FAMILY, 16))
-        .light_line_style(RGBColor(235, 235, 235))
-        .draw()
-        .map_err(msg)?;
-    for &(label, values, colour) in lines {
+    for &(_, values, colour) in lines {
         let pts = || {
             values
                 .iter()
@@ -508,25 +591,13 @@ where
         };
         chart
             .draw_series(LineSeries::new(pts(), colour.stroke_width(2)))
-            .map_err(msg)?
-            .label(label)
-            .legend(move |(x, y)| {
-                PathElement::new(vec![(x, y), (x + 24, y)], colour.stroke_width(3))
-            });
-        if n <= 100 {
+            .map_err(msg)?;
+        if values.len() <= 100 {
             chart
                 .draw_series(pts().map(|p| Circle::new(p, 3, colour.filled())))
                 .map_err(msg)?;
         }
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.85))
-        .border_style(BLACK.mix(0.5))
-        .label_font((FAMILY, 15))
-        .draw()
-        .map_err(msg)?;
     Ok(())
 }
 
@@ -550,6 +621,16 @@ mod tests {
         // Stegun 1964, Table 26.1, from memory).
         assert!((gauss_pdf(0.0, 0.0, 1.0) - 0.398_942_280_401_432_7).abs() < 1e-15);
         assert!((gauss_pdf(1.0, 1.0, 2.0) - 0.199_471_140_200_716_35).abs() < 1e-15);
+    }
+
+    #[test]
+    fn tick_labels_have_the_decimals_the_spacing_needs() {
+        // Display rule, common practice, no source: ticks 0.2 apart need one decimal; no "-0".
+        let f = tick_formatter(&(-0.5..1.5));
+        assert_eq!(f(&0.4), "0.4");
+        assert_eq!(f(&-1e-17), "0.0");
+        assert_eq!(tick_formatter(&(0.0..2000.0))(&600.0), "600");
+        assert_eq!(tick_formatter(&(0.0..1e-6))(&5e-7), "5.00e-7");
     }
 
     #[test]
