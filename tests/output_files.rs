@@ -525,6 +525,25 @@ fn report_links_resolve_to_decodable_pictures_and_text_is_escaped() {
         metadata: &meta,
         figures: &figures,
     };
+    // The table note links components.csv only when the file is there.
+    let names: Vec<String> = (0..30).map(|i| format!("x{i}")).collect();
+    let v = vec![1.0; 30];
+    write_components(
+        &dir,
+        &ComponentStats {
+            names: &names,
+            analysis: &v,
+            background_std: None,
+            laplace_std: None,
+            posterior_mean: &v,
+            posterior_std: &v,
+            mcse_mean: &v,
+            ess_bulk: &v,
+            ess_tail: &v,
+            rhat: &v,
+        },
+    )
+    .unwrap();
     let path = write_report(&dir, &page).unwrap();
     let html = std::fs::read_to_string(&path).unwrap();
 
@@ -536,13 +555,14 @@ import json, sys
 from html.parser import HTMLParser
 class P(HTMLParser):
     def __init__(self):
-        super().__init__(); self.src = []; self.rows = 0; self.text = []
+        super().__init__(); self.src = []; self.href = []; self.rows = 0; self.text = []
     def handle_starttag(self, tag, attrs):
         if tag == "img": self.src.append(dict(attrs)["src"])
+        if tag == "a": self.href.append(dict(attrs)["href"])
         if tag == "tr": self.rows += 1
     def handle_data(self, d): self.text.append(d)
 p = P(); p.feed(open(sys.argv[1], encoding="utf-8").read())
-print(json.dumps({"src": p.src, "rows": p.rows, "text": "".join(p.text)}))
+print(json.dumps({"src": p.src, "href": p.href, "rows": p.rows, "text": "".join(p.text)}))
 "#,
         &[&path],
     );
@@ -556,6 +576,10 @@ print(json.dumps({"src": p.src, "rows": p.rows, "text": "".join(p.text)}))
     assert_eq!(src, expected);
     for (file, size) in &pictures {
         check_png(&dir.join(file), *size);
+    }
+    assert_eq!(parsed["href"], serde_json::json!(["components.csv"]));
+    for href in parsed["href"].as_array().unwrap() {
+        assert!(dir.join(href.as_str().unwrap()).is_file(), "{href}");
     }
     // Header row plus the 20 rows shown of 30.
     assert_eq!(parsed["rows"], 21);

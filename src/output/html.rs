@@ -105,7 +105,10 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
         h,
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
          <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
-         <title>{title}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{title}</h1>\n"
+         <title>{title}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{title}</h1>\n\
+         <p class=\"note\">Written {} by varpost {}.</p>\n",
+        super::utc_now(),
+        env!("CARGO_PKG_VERSION")
     );
     let class = match page.passed {
         Some(true) => "verdict pass",
@@ -119,13 +122,25 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
         escape(page.caution)
     );
 
+    if !page.metadata.is_empty() {
+        h.push_str("<h2>Run</h2>\n<dl class=\"meta\">\n");
+        for (k, v) in page.metadata {
+            let _ = writeln!(h, "<dt>{}</dt><dd>{}</dd>", escape(k), escape(v));
+        }
+        h.push_str("</dl>\n");
+    }
+
     h.push_str("<h2>Components</h2>\n");
     let shown = page.rows.len().min(page.max_rows);
     if page.rows.len() > shown {
+        let csv = if dir.join("components.csv").is_file() {
+            "<a href=\"components.csv\">components.csv</a>"
+        } else {
+            "components.csv"
+        };
         let _ = writeln!(
             h,
-            "<p class=\"note\">The {shown} least-converged of {} components; all are in \
-             <a href=\"components.csv\">components.csv</a>.</p>",
+            "<p class=\"note\">The {shown} least-converged of {} components; all are in {csv}.</p>",
             page.rows.len()
         );
     } else {
@@ -167,11 +182,7 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
         }
     }
 
-    h.push_str("<h2>Run</h2>\n<dl class=\"meta\">\n");
-    for (k, v) in page.metadata {
-        let _ = writeln!(h, "<dt>{}</dt><dd>{}</dd>", escape(k), escape(v));
-    }
-    h.push_str("</dl>\n</body>\n</html>\n");
+    h.push_str("</body>\n</html>\n");
 
     let path = dir.join(FILE_NAME);
     write_atomic(&path, h.as_bytes())?;
