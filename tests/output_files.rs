@@ -54,6 +54,14 @@ fn run_python(script: &str, args: &[&Path]) -> Value {
     serde_json::from_slice(&out.stdout).expect("the script prints JSON")
 }
 
+fn strs(v: &Value) -> Vec<String> {
+    v.as_array()
+        .expect("array")
+        .iter()
+        .map(|x| x.as_str().expect("string").to_string())
+        .collect()
+}
+
 fn f64s(v: &Value) -> Vec<f64> {
     v.as_array()
         .expect("array")
@@ -189,26 +197,11 @@ fn ensemble_round_trip_through_netcdf4_and_scipy() {
             vars["state"]["dims"],
             serde_json::json!(["member", "component"])
         );
-        let chain: Vec<i64> = vars["chain"]["data"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|v| v.as_i64().unwrap())
-            .collect();
-        let draw: Vec<i64> = vars["draw"]["data"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|v| v.as_i64().unwrap())
-            .collect();
-        assert_eq!(
-            chain,
-            members.iter().map(|m| m.chain as i64).collect::<Vec<_>>()
-        );
-        assert_eq!(
-            draw,
-            members.iter().map(|m| m.draw as i64).collect::<Vec<_>>()
-        );
+        // Integers arrive as JSON numbers; compared as f64, exact below 2^53.
+        let chain: Vec<f64> = members.iter().map(|m| m.chain as f64).collect();
+        let draw: Vec<f64> = members.iter().map(|m| m.draw as f64).collect();
+        assert_eq!(f64s(&vars["chain"]["data"]), chain);
+        assert_eq!(f64s(&vars["draw"]["data"]), draw);
         for (name, want) in [
             ("analysis", &analysis),
             ("background", &background),
@@ -221,13 +214,7 @@ fn ensemble_round_trip_through_netcdf4_and_scipy() {
             assert_eq!(vars[name]["dims"], serde_json::json!(["component"]));
             assert!(vars[name]["attrs"]["long_name"].as_str().unwrap().len() > 5);
         }
-        let names_read: Vec<String> = vars["component_name"]["data"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|v| v.as_str().unwrap().to_string())
-            .collect();
-        assert_eq!(names_read, names);
+        assert_eq!(strs(&vars["component_name"]["data"]), names);
         assert_eq!(vars["state"]["attrs"]["units"], "m s-1");
         assert_eq!(vars["analysis"]["attrs"]["units"], "m s-1");
         assert_eq!(vars["posterior_variance"]["attrs"]["units"], "(m s-1)^2");
@@ -566,12 +553,7 @@ print(json.dumps({"src": p.src, "href": p.href, "rows": p.rows, "text": "".join(
 "#,
         &[&path],
     );
-    let src: Vec<&str> = parsed["src"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|v| v.as_str().unwrap())
-        .collect();
+    let src = strs(&parsed["src"]);
     let expected: Vec<&str> = pictures.iter().map(|(f, _)| *f).collect();
     assert_eq!(src, expected);
     for (file, size) in &pictures {
@@ -648,36 +630,15 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
 "#,
         &[&path],
     );
-    let header: Vec<&str> = got["header"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|v| v.as_str().unwrap())
-        .collect();
+    // The columns the report's readers expect, in order.
+    let header = strs(&got["header"]);
     assert_eq!(header, COMPONENT_COLUMNS);
     assert_eq!(
-        header,
-        [
-            "component",
-            "name",
-            "analysis",
-            "background_std",
-            "laplace_std",
-            "posterior_mean",
-            "posterior_std",
-            "mcse_mean",
-            "ess_bulk",
-            "ess_tail",
-            "rhat"
-        ]
+        header.join(","),
+        "component,name,analysis,background_std,laplace_std,posterior_mean,posterior_std,mcse_mean,\
+         ess_bulk,ess_tail,rhat"
     );
-    let names_read: Vec<String> = got["names"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|v| v.as_str().unwrap().to_string())
-        .collect();
-    assert_eq!(names_read, names);
+    assert_eq!(strs(&got["names"]), names);
     assert_eq!(got["component"], serde_json::json!([0, 1, 2, 3]));
     for (h, want) in [
         ("analysis", &a),

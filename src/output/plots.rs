@@ -351,13 +351,15 @@ fn chain_panels(
     Ok(())
 }
 
+/// The size of a picture of `k` stacked panels.
+fn panels_size(k: usize) -> (u32, u32) {
+    (WIDTH, TITLE_HEIGHT + PANEL_HEIGHT * k.max(1) as u32)
+}
+
 /// Trace plots: one panel per component (give the least-converged few), one line per chain, the draw
 /// index across. Size: [`WIDTH`] × ([`TITLE_HEIGHT`] + [`PANEL_HEIGHT`] per component).
 pub fn trace_plot(path: &Path, components: &[ChainSeries<'_>]) -> Result<(u32, u32)> {
-    let size = (
-        WIDTH,
-        TITLE_HEIGHT + PANEL_HEIGHT * components.len().max(1) as u32,
-    );
+    let size = panels_size(components.len());
     render(path, size, |root| {
         chain_panels(
             root,
@@ -374,10 +376,7 @@ pub fn trace_plot(path: &Path, components: &[ChainSeries<'_>]) -> Result<(u32, u
 /// Autocorrelation by lag, one panel per component and one line per chain (the autocorrelations are
 /// computed by the caller, lag 0 first). Same size rule as [`trace_plot`].
 pub fn autocorrelation_plot(path: &Path, components: &[ChainSeries<'_>]) -> Result<(u32, u32)> {
-    let size = (
-        WIDTH,
-        TITLE_HEIGHT + PANEL_HEIGHT * components.len().max(1) as u32,
-    );
+    let size = panels_size(components.len());
     render(path, size, |root| {
         chain_panels(
             root,
