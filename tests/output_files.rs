@@ -463,6 +463,13 @@ fn plots_survive_non_finite_and_empty_input() {
     }];
     let size = trace_plot(&dir.join("t.png"), &s).unwrap();
     check_png(&dir.join("t.png"), size);
+    let many = ar1_chains(12, 300, 0.5, 0.1, 3);
+    let s = [ChainSeries {
+        label: "twelve chains",
+        chains: &many,
+    }];
+    let size = trace_plot(&dir.join("many.png"), &s).unwrap();
+    check_png(&dir.join("many.png"), size);
     let size = autocorrelation_plot(&dir.join("a.png"), &[]).unwrap();
     check_png(&dir.join("a.png"), size);
     let e = std_plot(&dir.join("s.png"), &[1.0, 2.0], Some(&[1.0]), None).unwrap_err();

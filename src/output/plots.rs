@@ -165,6 +165,8 @@ fn caption_font() -> (&'static str, u32) {
 enum Mark {
     Line,
     Bar,
+    /// Text only, no mark.
+    Note,
 }
 
 /// Draws the title and, under it, a colour key (the legend, kept out of the data), then returns the
@@ -187,11 +189,16 @@ fn header<'a>(
         let (w, _) = top.estimate_text_size(label, &font).map_err(msg)?;
         if x + 34 + w as i32 > WIDTH as i32 - 20 {
             let more = format!("... {} more", key.len() - i);
-            top.draw(&Text::new(more, (x, y - 9), font.clone()))
+            top.draw(&Text::new(more, (x, y - 8), font.clone()))
                 .map_err(msg)?;
             break;
         }
+        let text_x = match mark {
+            Mark::Note => x,
+            _ => x + 32,
+        };
         match mark {
+            Mark::Note => {}
             Mark::Line => top
                 .draw(&PathElement::new(
                     vec![(x, y), (x + 26, y)],
@@ -205,18 +212,26 @@ fn header<'a>(
                 ))
                 .map_err(msg)?,
         }
-        top.draw(&Text::new(label.clone(), (x + 32, y - 8), font.clone()))
+        top.draw(&Text::new(label.clone(), (text_x, y - 8), font.clone()))
             .map_err(msg)?;
-        x += 32 + w as i32 + 28;
+        x = text_x + w as i32 + 20;
     }
     Ok(rest)
 }
 
-/// The key of one line per chain; colours repeat after the palette's eight.
+/// The key of one line per chain; beyond the palette's eight colours, a note that they repeat.
 fn chain_key(n_chains: usize) -> Vec<(String, RGBColor, Mark)> {
-    (0..n_chains)
+    let mut key: Vec<_> = (0..n_chains.min(PALETTE.len()))
         .map(|c| (format!("chain {c}"), chain_colour(c), Mark::Line))
-        .collect()
+        .collect();
+    if n_chains > PALETTE.len() {
+        key.push((
+            format!("(colours repeat after {})", PALETTE.len()),
+            BLACK,
+            Mark::Note,
+        ));
+    }
+    key
 }
 
 /// A tick-label formatter for an axis spanning `range`: as many decimals as the tick spacing needs,
