@@ -4,13 +4,17 @@
 //! finds the analysis (MAP) with L-BFGS, builds a Hessian-based preconditioner at the analysis, and runs
 //! preconditioned MALA / HMC chains from there, with convergence diagnostics.
 
+pub mod adapt;
 pub mod cli;
+pub mod diagnostics;
 pub mod error;
+pub mod interrupt;
 pub mod optimize;
 pub mod output;
 pub mod pipeline;
 pub mod precond;
 pub mod problem;
+pub mod sampler;
 
 pub use error::{Error, EvalError, Result};
 pub use problem::{Counted, EvalCounts, Problem};

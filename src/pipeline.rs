@@ -7,8 +7,9 @@ use std::path::{Path, PathBuf};
 
 use crate::error::{Error, Result};
 use crate::optimize::{find_map, MapConfig, MapResult};
-use crate::output::summary::{CheckSummary, MapSummary, ReferenceSummary};
+use crate::output::summary::{CheckSummary, LaplaceSummary, MapSummary, ReferenceSummary};
 use crate::output::{table, Summary};
+use crate::precond::{laplace, Laplace, LaplaceOptions};
 use crate::problem::builtin::{self, Builtin};
 use crate::problem::check::{gradient_test, GradientReport};
 use crate::problem::settings::Settings;
@@ -234,6 +235,79 @@ fn write_analysis(loaded: &Loaded, map: &MapResult, out: &Path) -> Result<()> {
         &names,
         &[("analysis", &map.x), ("background", &bg)],
     )
+}
+
+/// Settings of the Hessian run: the minimisation, then the Laplace approximation at its result.
+#[derive(Debug, Clone, Default)]
+pub struct HessianRunConfig {
+    pub map: MapRunConfig,
+    pub laplace: LaplaceOptions,
+}
+
+/// Finds the analysis, estimates the Hessian there, and writes DIR/summary.json, DIR/analysis.csv,
+/// DIR/variance.csv (analysis, Laplace and background variances per component) and, where the method
+/// gives eigen-directions, DIR/eigenvectors.csv (one column per direction, in model space).
+pub fn run_hessian(
+    loaded: &Loaded,
+    config: &HessianRunConfig,
+    out: &Path,
+) -> Result<(MapResult, Summary)> {
+    let mut summary = loaded.summary("hessian");
+    let map = analysis(loaded, &config.map, &mut summary)?;
+    write_analysis(loaded, &map, out)?;
+    let lap = laplace(&loaded.problem, &map.x, &map.pairs, &config.laplace)?;
+    summary.laplace = Some(laplace_summary(loaded, &lap, &map, out)?);
+    summary.evaluations = loaded.problem.counts();
+    summary.write(out)?;
+    Ok((map, summary))
+}
+
+fn laplace_summary(
+    loaded: &Loaded,
+    lap: &Laplace<'_>,
+    map: &MapResult,
+    out: &Path,
+) -> Result<LaplaceSummary> {
+    let names = loaded.names();
+    let bg_var = loaded
+        .problem
+        .prior()
+        .map(|p| p.variance())
+        .unwrap_or_default();
+    let std: Vec<f64> = lap.variance.iter().map(|v| v.sqrt()).collect();
+    table::write_columns(
+        &out.join("variance.csv"),
+        &names,
+        &[
+            ("analysis", &map.x),
+            ("laplace_variance", &lap.variance),
+            ("laplace_std", &std),
+            ("background_variance", &bg_var),
+        ],
+    )?;
+    let eigenvectors_file = match &lap.eigenvectors {
+        Some(v) if v.ncols() > 0 => {
+            let headers: Vec<String> = (0..v.ncols()).map(|j| format!("mode{j}")).collect();
+            // Column-major storage: column j is the j-th run of nrows values.
+            let cols: Vec<(&str, &[f64])> = headers
+                .iter()
+                .zip(v.as_slice().chunks(v.nrows()))
+                .map(|(h, c)| (h.as_str(), c))
+                .collect();
+            table::write_columns(&out.join("eigenvectors.csv"), &names, &cols)?;
+            Some("eigenvectors.csv".to_string())
+        }
+        _ => None,
+    };
+    Ok(LaplaceSummary {
+        method: lap.method,
+        rank: lap.rank,
+        variance: lap.variance.clone(),
+        log_det_cov: lap.precond.log_det_cov(),
+        eigenvalues: lap.eigenvalues.clone(),
+        eigenvectors_file,
+        info: lap.info.clone(),
+    })
 }
 
 /// What the demo found, for printing.

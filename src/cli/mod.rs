@@ -7,7 +7,8 @@ use clap::{Args, Parser, Subcommand};
 
 use crate::error::{Error, Result};
 use crate::optimize::MapConfig;
-use crate::pipeline::{self, CheckConfig, MapRunConfig, ProblemSource};
+use crate::pipeline::{self, CheckConfig, HessianRunConfig, MapRunConfig, ProblemSource};
+use crate::precond::{LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::problem::lorenz96::{Lorenz96Config, Scenario};
 use crate::problem::settings::Settings;
 use crate::problem::Problem;
@@ -46,6 +47,15 @@ pub enum Command {
         problem: ProblemArgs,
         #[command(flatten)]
         lbfgs: LbfgsArgs,
+    },
+    /// Find the analysis, then the Hessian there: the Laplace (analysis-error) covariance.
+    Hessian {
+        #[command(flatten)]
+        problem: ProblemArgs,
+        #[command(flatten)]
+        lbfgs: LbfgsArgs,
+        #[command(flatten)]
+        hessian: HessianArgs,
     },
     /// Write a synthetic scenario of a built-in problem (truth, background, observations) to a folder.
     Synth {
@@ -118,6 +128,57 @@ impl LbfgsArgs {
     }
 }
 
+/// Settings of the Hessian estimate at the analysis.
+#[derive(Debug, Args)]
+pub struct HessianArgs {
+    /// auto, dense, low-rank, lbfgs or diagonal. auto: dense for small n, low-rank where the prior is
+    /// known, else the minimiser's L-BFGS pairs.
+    #[arg(long, default_value = "auto")]
+    pub method: String,
+    /// Low-rank: keep eigenvalues of the prior-preconditioned misfit Hessian with |λ| above this.
+    #[arg(long, default_value_t = LaplaceOptions::default().eigen_threshold)]
+    pub threshold: f64,
+    /// Low-rank: largest rank (default min(n, 1000)).
+    #[arg(long)]
+    pub max_rank: Option<usize>,
+    /// Largest n for which auto chooses the dense method.
+    #[arg(long, default_value_t = LaplaceOptions::default().dense_max_dim)]
+    pub dense_max_dim: usize,
+    /// Seed of the randomized eigensolver.
+    #[arg(long, default_value_t = LaplaceOptions::default().seed)]
+    pub hessian_seed: u64,
+}
+
+impl HessianArgs {
+    fn options(&self) -> Result<LaplaceOptions> {
+        let method = match self.method.as_str() {
+            "auto" => None,
+            m => Some(m.parse::<LaplaceMethod>().map_err(|_| {
+                Error::Config(format!(
+                    "--method {m}: choose auto, dense, low-rank, lbfgs or diagonal"
+                ))
+            })?),
+        };
+        if !(self.threshold.is_finite() && self.threshold >= 0.0) {
+            return Err(Error::Config(format!(
+                "--threshold {} must be a finite number >= 0",
+                self.threshold
+            )));
+        }
+        if self.max_rank == Some(0) {
+            return Err(Error::Config("--max-rank must be at least 1".into()));
+        }
+        Ok(LaplaceOptions {
+            method,
+            eigen_threshold: self.threshold,
+            max_rank: self.max_rank,
+            dense_max_dim: self.dense_max_dim,
+            seed: self.hessian_seed,
+            ..Default::default()
+        })
+    }
+}
+
 impl ProblemArgs {
     fn source(&self) -> Result<ProblemSource> {
         match &self.problem {
@@ -177,6 +238,55 @@ pub fn run(cli: Cli) -> Result<i32> {
             println!(
                 "wrote {} and analysis.csv",
                 problem.out.join("summary.json").display()
+            );
+            Ok(if m.converged { 0 } else { 4 })
+        }
+        Command::Hessian {
+            problem,
+            lbfgs,
+            hessian,
+        } => {
+            let cfg = HessianRunConfig {
+                map: lbfgs.config()?,
+                laplace: hessian.options()?,
+            };
+            let loaded = pipeline::load(&problem.source()?)?;
+            println!(
+                "Hessian at the analysis: {} (n = {})",
+                loaded.description,
+                loaded.problem.dim()
+            );
+            let (m, s) = pipeline::run_hessian(&loaded, &cfg, &problem.out)?;
+            print_map(&m);
+            if let Some(l) = &s.laplace {
+                print_laplace(l);
+                if let Some(r) = &s.reference {
+                    let err = l
+                        .variance
+                        .iter()
+                        .zip(&r.variance)
+                        .map(|(a, b)| (a - b).abs() / b.abs())
+                        .fold(0.0, f64::max);
+                    println!(
+                        "  closed-form posterior variances: largest relative difference {err:.2e}"
+                    );
+                }
+            }
+            println!(
+                "evaluations: {} cost+gradient, {} cost only, {} Hessian-vector",
+                s.evaluations.gradient, s.evaluations.cost, s.evaluations.hessvec
+            );
+            println!(
+                "wrote {}, analysis.csv, variance.csv{}",
+                problem.out.join("summary.json").display(),
+                if s.laplace
+                    .as_ref()
+                    .is_some_and(|l| l.eigenvectors_file.is_some())
+                {
+                    ", eigenvectors.csv"
+                } else {
+                    ""
+                }
             );
             Ok(if m.converged { 0 } else { 4 })
         }
@@ -242,6 +352,53 @@ fn print_map(m: &crate::optimize::MapResult) {
         } else {
             "NOT converged: the analysis may be inaccurate"
         }
+    );
+}
+
+fn print_laplace(l: &crate::output::summary::LaplaceSummary) {
+    let rank = l.rank.map(|r| format!(", rank {r}")).unwrap_or_default();
+    let products = match (l.info.products, l.info.exact_products) {
+        (0, _) => "no extra evaluations".to_string(),
+        (k, true) => format!("{k} exact Hessian-vector products"),
+        (k, false) => format!("{k} Hessian-vector products by differences of gradients"),
+    };
+    println!(
+        "  Laplace covariance: {} method{rank}, {products}",
+        l.method
+    );
+    if !l.eigenvalues.is_empty() {
+        let lead: Vec<String> = l
+            .eigenvalues
+            .iter()
+            .take(5)
+            .map(|v| format!("{v:.4e}"))
+            .collect();
+        println!(
+            "  leading eigenvalues {}: {}",
+            match l.info.spectrum_of {
+                Some(SpectrumOf::Hessian) => "of the Hessian",
+                _ => "of the prior-preconditioned misfit Hessian",
+            },
+            lead.join(", ")
+        );
+    }
+    if l.info.rank_truncated {
+        println!("  the maximum rank was reached with eigenvalues still above the threshold: raise --max-rank");
+    }
+    if l.info.pairs_skipped > 0 {
+        println!(
+            "  {} L-BFGS pairs skipped (curvature condition)",
+            l.info.pairs_skipped
+        );
+    }
+    let (lo, hi) = l
+        .variance
+        .iter()
+        .fold((f64::INFINITY, 0.0_f64), |(a, b), v| (a.min(*v), b.max(*v)));
+    println!(
+        "  analysis-error standard deviations from {:.4e} to {:.4e}",
+        lo.sqrt(),
+        hi.sqrt()
     );
 }
 

@@ -4,6 +4,7 @@ use std::path::Path;
 
 use super::write_atomic;
 use crate::error::{Error, Result};
+use crate::precond::{LaplaceInfo, LaplaceMethod};
 use crate::problem::EvalCounts;
 
 /// The caution every output carries.
@@ -39,6 +40,26 @@ pub struct CheckSummary {
     pub fd_max_rel_error: Option<f64>,
 }
 
+/// The Laplace approximation at the analysis (the inverse Hessian there), as reported.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct LaplaceSummary {
+    /// "dense", "low-rank", "lbfgs" or "diagonal".
+    pub method: LaplaceMethod,
+    /// Rank of the low-rank update of the prior (low-rank method only).
+    pub rank: Option<usize>,
+    /// diag of the Laplace covariance: the analysis-error variances.
+    pub variance: Vec<f64>,
+    /// log det of the Laplace covariance.
+    pub log_det_cov: f64,
+    /// Leading eigenvalues, descending, of `spectrum_of`.
+    pub eigenvalues: Vec<f64>,
+    /// File (in the output folder) holding the matching eigen-directions in model space, one per column.
+    pub eigenvectors_file: Option<String>,
+    /// What the spectrum is of, the cost, and accuracy indicators.
+    #[serde(flatten)]
+    pub info: LaplaceInfo,
+}
+
 /// The closed-form posterior, where the problem has one.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ReferenceSummary {
@@ -61,6 +82,8 @@ pub struct Summary {
     pub check: Option<CheckSummary>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub map: Option<MapSummary>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub laplace: Option<LaplaceSummary>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub reference: Option<ReferenceSummary>,
     /// The background state and its error variances, where the problem gives its prior.

@@ -6,11 +6,21 @@
 //! need L (to map a proposal to the model's space) and Lᵀ (to map the gradient back). Solving with L is
 //! optional: it lets a point given in model space be whitened.
 
+pub mod build;
 pub mod dense;
+pub mod diagonal;
 pub mod identity;
+pub mod lbfgs;
+pub mod low_rank;
+#[cfg(test)]
+mod test_support;
 
+pub use build::{laplace, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf};
 pub use dense::DensePrecond;
+pub use diagonal::DiagonalPrecond;
 pub use identity::IdentityPrecond;
+pub use lbfgs::LbfgsPrecond;
+pub use low_rank::{LowRankPrecond, PriorSqrt};
 
 /// A Gaussian metric given by a square root L of its covariance C = H⁻¹ = L Lᵀ.
 pub trait Preconditioner: Send + Sync {

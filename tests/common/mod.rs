@@ -1,6 +1,8 @@
 //! Shared helpers of the integration tests.
 #![allow(dead_code)]
 
+pub mod sampling;
+
 use std::path::PathBuf;
 use std::process::{Command, Output};
 

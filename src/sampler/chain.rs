@@ -1,0 +1,500 @@
+//! Running the chains: start points, warm-up, sampling, streaming of the draws, checkpoints.
+//!
+//! Chains run in parallel (rayon), each with its own random stream: chain c uses
+//! `ChaCha8Rng::seed_from_u64(seed)` with `set_stream(c)`. Nothing a chain computes depends on another
+//! chain or on the thread that runs it, so one seed gives bit-identical output whatever the thread
+//! count, and a run resumed from a checkpoint continues exactly as the uninterrupted run would.
+//!
+//! The run advances in segments that end at multiples of `checkpoint_every` iterations and at the end
+//! of the warm-up. After each segment every draws file is synced and the checkpoint rewritten; the
+//! evaluation counts of a segment belong to its phase (warm-up or sampling), which segments never mix.
+//! The interrupt flag and a fatal evaluation error stop the chains at the next iteration; the state is
+//! saved before the error is returned.
+//!
+//! Start points: u = s·z with z ~ N(0, I) from the chain's stream and s = `init_scale` (default 2: a
+//! draw from the Laplace approximation with doubled spread, over-dispersed as recommended by Gelman &
+//! Rubin 1992, "Inference from iterative simulation using multiple sequences", Statistical Science 7(4)).
+//! Where π cannot be evaluated there, s is halved (up to 20 times), then the analysis itself is used.
+
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+
+use rand::SeedableRng;
+use rayon::prelude::*;
+
+use super::checkpoint::{checkpoint_path, ChainCheckpoint, Checkpoint, RngState};
+use super::config::SampleConfig;
+use super::draws::{
+    draws_path, DrawRecord, DrawsWriter, FLAG_ACCEPTED, FLAG_DIVERGENT, FLAG_NONFINITE,
+};
+use super::welford::Welford;
+use super::{standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use crate::adapt::Warmup;
+use crate::error::{Error, Result};
+use crate::interrupt::Interrupt;
+use crate::problem::EvalCounts;
+
+/// Told after every iteration of every chain (from the chains' threads).
+pub trait Progress: Sync {
+    /// Chain `chain` has done `done` of its `total` iterations (warm-up included).
+    fn advance(&self, chain: usize, done: u64, total: u64);
+}
+
+impl<F: Fn(usize, u64, u64) + Sync> Progress for F {
+    fn advance(&self, chain: usize, done: u64, total: u64) {
+        self(chain, done, total)
+    }
+}
+
+/// Counters of one phase of one chain.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct PhaseStats {
+    /// Iterations done.
+    pub iterations: u64,
+    /// Sum of the acceptance probabilities.
+    pub accept_prob_sum: f64,
+    /// Accepted proposals.
+    pub accepted: u64,
+    /// Divergent HMC trajectories.
+    pub divergences: u64,
+    /// Proposals rejected because they could not be evaluated.
+    pub rejected_nonfinite: u64,
+    /// Leapfrog steps / gradient evaluations done by the kernel.
+    pub steps: u64,
+}
+
+impl PhaseStats {
+    fn add(&mut self, info: &StepInfo) {
+        self.iterations += 1;
+        self.accept_prob_sum += info.accept_prob;
+        self.accepted += u64::from(info.accepted);
+        self.divergences += u64::from(info.divergent);
+        self.rejected_nonfinite += u64::from(info.nonfinite);
+        self.steps += u64::from(info.n_steps);
+    }
+    /// Mean acceptance probability (NaN before any iteration).
+    pub fn acceptance(&self) -> f64 {
+        self.accept_prob_sum / self.iterations as f64
+    }
+}
+
+/// Counters of one chain, by phase.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ChainStats {
+    /// During the warm-up.
+    pub warmup: PhaseStats,
+    /// During sampling.
+    pub sampling: PhaseStats,
+}
+
+/// What one chain reports.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ChainSummary {
+    /// Chain index.
+    pub chain: usize,
+    /// Mean acceptance probability over the sampling iterations.
+    pub acceptance: f64,
+    /// Mean acceptance probability over the warm-up.
+    pub warmup_acceptance: f64,
+    /// The adapted step size used for sampling (`None` for kernels without one).
+    pub step_size: Option<f64>,
+    /// The refined diagonal metric (inverse mass matrix in whitened coordinates), where the warm-up
+    /// refined it.
+    pub metric: Option<Vec<f64>>,
+    /// Divergent trajectories while sampling.
+    pub divergences: u64,
+    /// Proposals rejected as non-evaluable while sampling.
+    pub rejected_nonfinite: u64,
+    /// Counters by phase (warm-up numbers are reported here, apart from the kept draws).
+    pub stats: ChainStats,
+    /// Kept draws.
+    pub draws: u64,
+    /// Mean of the kept draws (model space).
+    pub mean: Vec<f64>,
+    /// Variance of the kept draws (model space).
+    pub variance: Vec<f64>,
+    /// The chain's draws file.
+    pub draws_file: PathBuf,
+}
+
+/// The outcome of a sampling run.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct SampleResult {
+    /// The kernel's name.
+    pub kernel: &'static str,
+    /// Per chain.
+    pub chains: Vec<ChainSummary>,
+    /// Posterior mean over all chains' kept draws (model space).
+    pub mean: Vec<f64>,
+    /// Posterior variance over all chains' kept draws.
+    pub variance: Vec<f64>,
+    /// Kept draws over all chains.
+    pub draws: u64,
+    /// Evaluations during the warm-up (start points included).
+    pub counts_warmup: EvalCounts,
+    /// Evaluations while sampling.
+    pub counts_sampling: EvalCounts,
+}
+
+struct Runner {
+    index: usize,
+    rng: ChainRng,
+    state: ChainState,
+    iteration: u64,
+    warmup: Warmup,
+    step_size: f64,
+    stats: ChainStats,
+    moments: Welford,
+    writer: DrawsWriter,
+}
+
+/// What a chain needs besides its own state.
+struct Ctx<'t, 'a> {
+    target: &'t Target<'a>,
+    kernel: &'t dyn Kernel,
+    config: &'t SampleConfig,
+    interrupt: &'t Interrupt,
+    abort: &'t AtomicBool,
+    progress: &'t dyn Progress,
+}
+
+fn add_counts(a: &EvalCounts, b: &EvalCounts) -> EvalCounts {
+    EvalCounts {
+        cost: a.cost + b.cost,
+        gradient: a.gradient + b.gradient,
+        hessvec: a.hessvec + b.hessvec,
+        failed: a.failed + b.failed,
+    }
+}
+
+impl Runner {
+    fn start(index: usize, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<Runner> {
+        let (target, kernel, config) = (ctx.target, ctx.kernel, ctx.config);
+        let n = target.dim();
+        let mut rng = ChainRng::seed_from_u64(config.seed);
+        rng.set_stream(index as u64);
+        let mut state = None;
+        let mut scale = config.init_scale;
+        for _ in 0..20 {
+            let z = standard_normal(&mut rng, n);
+            if let Some(s) = kernel.init(target, z.iter().map(|v| scale * v).collect())? {
+                state = Some(s);
+                break;
+            }
+            scale *= 0.5;
+        }
+        let state = match state {
+            Some(s) => s,
+            None => kernel.init(target, vec![0.0; n])?.ok_or_else(|| {
+                Error::Numerical(format!(
+                    "chain {index}: the cost cannot be evaluated at the analysis nor at 20 start points \
+                     near it; check the problem at the analysis"
+                ))
+            })?,
+        };
+        let warmup = match kernel.spec(n).step_size {
+            Some(spec) => Warmup::init(
+                config.warmup,
+                n,
+                config.initial_step_size.unwrap_or(spec.initial),
+                config.target_accept.unwrap_or(spec.target_accept),
+                true,
+                config.adapt_metric,
+            )?,
+            // No step size: the schedule only counts the burn-in iterations.
+            None => Warmup::init(config.warmup, n, 1.0, 0.5, false, false)?,
+        };
+        let writer = DrawsWriter::create(&draws_path(out_dir, index), n, index)?;
+        Ok(Runner {
+            index,
+            rng,
+            state,
+            iteration: 0,
+            step_size: warmup.finish(),
+            warmup,
+            stats: ChainStats::default(),
+            moments: Welford::new(n),
+            writer,
+        })
+    }
+
+    fn restore(index: usize, c: &ChainCheckpoint, n: usize, out_dir: &Path) -> Result<Runner> {
+        let writer = DrawsWriter::resume(&draws_path(out_dir, index), n, index, c.records)?;
+        Ok(Runner {
+            index,
+            rng: c.rng.restore(),
+            state: c.state.clone(),
+            iteration: c.iteration,
+            warmup: c.warmup.clone(),
+            step_size: c.step_size,
+            stats: c.stats.clone(),
+            moments: c.moments.clone(),
+            writer,
+        })
+    }
+
+    fn save(&self) -> ChainCheckpoint {
+        ChainCheckpoint {
+            iteration: self.iteration,
+            records: self.writer.records(),
+            state: self.state.clone(),
+            rng: RngState::save(&self.rng),
+            warmup: self.warmup.clone(),
+            step_size: self.step_size,
+            stats: self.stats.clone(),
+            moments: self.moments.clone(),
+        }
+    }
+
+    /// Runs iterations until `until`, an interrupt or an abort. On error the chain is left as it was
+    /// before the failed iteration (random stream included), so that a checkpoint written afterwards
+    /// resumes that iteration exactly.
+    fn advance(&mut self, until: u64, ctx: &Ctx<'_, '_>) -> Result<()> {
+        let cfg = ctx.config;
+        let total = cfg.iterations();
+        while self.iteration < until {
+            if ctx.interrupt.is_set() || ctx.abort.load(Ordering::Relaxed) {
+                break;
+            }
+            let in_warmup = self.iteration < cfg.warmup;
+            let eps = if in_warmup {
+                self.warmup.step_size()
+            } else {
+                self.step_size
+            };
+            let rng_before = self.rng.clone();
+            let metric = self.warmup.metric();
+            let step = ctx
+                .kernel
+                .step(ctx.target, &mut self.rng, &self.state, eps, metric);
+            let (next, info) = match step {
+                Ok(r) => r,
+                Err(e) => {
+                    self.rng = rng_before;
+                    return Err(e);
+                }
+            };
+            if in_warmup {
+                let mut w = self.warmup.clone();
+                if let Err(e) = w.update(info.accept_prob, &next.u) {
+                    self.rng = rng_before;
+                    return Err(e);
+                }
+                if w.is_done() {
+                    self.step_size = w.finish();
+                }
+                self.warmup = w;
+                self.stats.warmup.add(&info);
+            } else {
+                if (self.iteration - cfg.warmup + 1).is_multiple_of(cfg.thin) {
+                    let mut x = vec![0.0; next.u.len()];
+                    ctx.target.to_model(&next.u, &mut x);
+                    let flags = if info.accepted { FLAG_ACCEPTED } else { 0 }
+                        | if info.divergent { FLAG_DIVERGENT } else { 0 }
+                        | if info.nonfinite { FLAG_NONFINITE } else { 0 };
+                    let rec = DrawRecord {
+                        x,
+                        log_density: next.log_density,
+                        accept_prob: info.accept_prob,
+                        energy: info.energy,
+                        step_size: info.step_size,
+                        flags,
+                        n_steps: info.n_steps,
+                    };
+                    if let Err(e) = self.writer.append(&rec) {
+                        self.rng = rng_before;
+                        return Err(e);
+                    }
+                    self.moments.push(&rec.x);
+                }
+                self.stats.sampling.add(&info);
+            }
+            self.state = next;
+            self.iteration += 1;
+            ctx.progress.advance(self.index, self.iteration, total);
+        }
+        Ok(())
+    }
+
+    fn summary(&self, has_step: bool, out_dir: &Path) -> ChainSummary {
+        ChainSummary {
+            chain: self.index,
+            acceptance: self.stats.sampling.acceptance(),
+            warmup_acceptance: self.stats.warmup.acceptance(),
+            step_size: has_step.then_some(self.step_size),
+            metric: self
+                .warmup
+                .adapts_metric()
+                .then(|| self.warmup.metric().to_vec()),
+            divergences: self.stats.sampling.divergences,
+            rejected_nonfinite: self.stats.sampling.rejected_nonfinite,
+            stats: self.stats.clone(),
+            draws: self.moments.count(),
+            mean: self.moments.mean().to_vec(),
+            variance: self.moments.variance(),
+            draws_file: draws_path(out_dir, self.index),
+        }
+    }
+}
+
+/// Samples `target` with the settings `config`, streaming the draws into `out_dir` (one
+/// `chain-<c>.draws` file per chain, see [`super::draws`]) and keeping `checkpoint.vpck` there up to
+/// date.
+///
+/// - `resume`: the checkpoint of an earlier run in the same folder ([`Checkpoint::load`]); it must
+///   match the target and settings. Without it the folder must not hold a checkpoint already.
+/// - `interrupt`: polled every iteration; when set, the state is saved and
+///   [`Error::Interrupted`] returned.
+/// - `progress`: told after every iteration.
+///
+/// A non-recoverable evaluation error stops all chains; the state before the failed iteration is saved
+/// and the error returned.
+pub fn run(
+    target: &Target<'_>,
+    config: &SampleConfig,
+    out_dir: &Path,
+    resume: Option<Checkpoint>,
+    interrupt: &Interrupt,
+    progress: &dyn Progress,
+) -> Result<SampleResult> {
+    let kernel = config.build_kernel()?;
+    let n = target.dim();
+    std::fs::create_dir_all(out_dir).map_err(|e| Error::io(out_dir, e))?;
+    let abort = AtomicBool::new(false);
+    let ctx = Ctx {
+        target,
+        kernel: kernel.as_ref(),
+        config,
+        interrupt,
+        abort: &abort,
+        progress,
+    };
+
+    let (mut runners, mut counts_warmup, mut counts_sampling) = match resume {
+        Some(ck) => {
+            ck.check_matches(target, config)?;
+            let runners = ck
+                .chains
+                .iter()
+                .enumerate()
+                .map(|(c, cc)| Runner::restore(c, cc, n, out_dir))
+                .collect::<Result<Vec<_>>>()?;
+            (runners, ck.counts_warmup, ck.counts_sampling)
+        }
+        None => {
+            let ck = checkpoint_path(out_dir);
+            if ck.exists() {
+                return Err(Error::Config(format!(
+                    "{} holds the checkpoint of an earlier run: resume that run, or sample into an \
+                     empty folder",
+                    out_dir.display()
+                )));
+            }
+            let before = target.counts();
+            let runners = (0..config.chains)
+                .into_par_iter()
+                .map(|c| Runner::start(c, &ctx, out_dir))
+                .collect::<Result<Vec<_>>>()?;
+            (
+                runners,
+                target.counts().since(&before),
+                EvalCounts::default(),
+            )
+        }
+    };
+
+    let save =
+        |runners: &mut [Runner], w: &EvalCounts, s: &EvalCounts, complete: bool| -> Result<()> {
+            for r in runners.iter_mut() {
+                r.writer.sync()?;
+            }
+            Checkpoint {
+                crate_version: env!("CARGO_PKG_VERSION").to_string(),
+                problem: target.name().to_string(),
+                dim: n,
+                precond: target.precond().kind().to_string(),
+                target_fingerprint: target.fingerprint(),
+                config: config.clone(),
+                chains: runners.iter().map(Runner::save).collect(),
+                counts_warmup: *w,
+                counts_sampling: *s,
+                complete,
+            }
+            .save(out_dir)
+        };
+    save(&mut runners, &counts_warmup, &counts_sampling, false)?;
+
+    let total = config.iterations();
+    let every = config.checkpoint_every;
+    loop {
+        let lowest = runners.iter().map(|r| r.iteration).min().unwrap_or(total);
+        if lowest >= total {
+            break;
+        }
+        let mut until = (lowest / every + 1).saturating_mul(every).min(total);
+        if lowest < config.warmup {
+            until = until.min(config.warmup);
+        }
+        let before = target.counts();
+        let outcomes: Vec<Result<()>> = runners
+            .par_iter_mut()
+            .map(|r| {
+                let out = r.advance(until, &ctx);
+                if out.is_err() {
+                    abort.store(true, Ordering::Relaxed);
+                }
+                out
+            })
+            .collect();
+        let spent = target.counts().since(&before);
+        if until <= config.warmup {
+            counts_warmup = add_counts(&counts_warmup, &spent);
+        } else {
+            counts_sampling = add_counts(&counts_sampling, &spent);
+        }
+        save(&mut runners, &counts_warmup, &counts_sampling, false)?;
+        if let Some((c, Err(e))) = outcomes.into_iter().enumerate().find(|(_, o)| o.is_err()) {
+            let iteration = runners[c].iteration;
+            let saved = format!(
+                "chain {c}, iteration {iteration} (the sampler state is saved in {}; the run can be \
+                 resumed once the cause is fixed)",
+                out_dir.display()
+            );
+            return Err(match e {
+                Error::Eval { context, source } => Error::Eval {
+                    context: format!("{context}, {saved}"),
+                    source,
+                },
+                other => other,
+            });
+        }
+        if interrupt.is_set() {
+            return Err(Error::Interrupted(format!(
+                "sampling stopped at iteration {} of {total}; the state is saved in {} and the run \
+                 can be resumed from there",
+                runners.iter().map(|r| r.iteration).min().unwrap_or(0),
+                out_dir.display()
+            )));
+        }
+    }
+    save(&mut runners, &counts_warmup, &counts_sampling, true)?;
+
+    let spec = kernel.spec(n);
+    let has_step = spec.step_size.is_some();
+    let chains: Vec<ChainSummary> = runners
+        .iter()
+        .map(|r| r.summary(has_step, out_dir))
+        .collect();
+    let pooled = runners
+        .iter()
+        .fold(Welford::new(n), |acc, r| acc.merge(&r.moments));
+    Ok(SampleResult {
+        kernel: spec.name,
+        chains,
+        mean: pooled.mean().to_vec(),
+        variance: pooled.variance(),
+        draws: pooled.count(),
+        counts_warmup,
+        counts_sampling,
+    })
+}

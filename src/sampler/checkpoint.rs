@@ -1,0 +1,285 @@
+//! The full sampler state on disk, so that a run stopped at any moment (SIGINT, SIGTERM, SIGKILL,
+//! a dead adapter) resumes exactly where its last checkpoint left it.
+//!
+//! File `checkpoint.vpck` in the output folder: one header line
+//! `varpost-checkpoint <format version> fnv1a64=<16 hex digits>` and a JSON payload whose FNV-1a hash
+//! the header carries. Floats are written as shortest round-trip decimals and parsed exactly
+//! (serde_json `float_roundtrip`), so a resumed chain continues bit for bit. Writes are atomic: a
+//! temporary file is written and synced, then renamed over the old one, and the folder is synced.
+
+use std::fs::File;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use rand::SeedableRng;
+
+use super::chain::ChainStats;
+use super::config::SampleConfig;
+use super::target::{Fnv64, Target};
+use super::welford::Welford;
+use super::{ChainRng, ChainState};
+use crate::adapt::Warmup;
+use crate::error::{Error, Result};
+use crate::problem::EvalCounts;
+
+/// Version of the checkpoint layout.
+pub const FORMAT_VERSION: u32 = 1;
+const FILE_NAME: &str = "checkpoint.vpck";
+
+/// The checkpoint file of an output folder.
+pub fn checkpoint_path(out_dir: &Path) -> PathBuf {
+    out_dir.join(FILE_NAME)
+}
+
+/// The position of a ChaCha8 stream: its seed, stream number and word position.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct RngState {
+    seed: [u8; 32],
+    stream: u64,
+    /// The 128-bit word position as (high, low) halves.
+    word_pos: [u64; 2],
+}
+
+impl RngState {
+    /// Captures a generator's position.
+    pub fn save(rng: &ChainRng) -> Self {
+        let w = rng.get_word_pos();
+        RngState {
+            seed: rng.get_seed(),
+            stream: rng.get_stream(),
+            word_pos: [(w >> 64) as u64, w as u64],
+        }
+    }
+    /// A generator at the saved position.
+    pub fn restore(&self) -> ChainRng {
+        let mut rng = ChainRng::from_seed(self.seed);
+        rng.set_stream(self.stream);
+        rng.set_word_pos((u128::from(self.word_pos[0]) << 64) | u128::from(self.word_pos[1]));
+        rng
+    }
+}
+
+/// One chain's saved state.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ChainCheckpoint {
+    /// Iterations done (warm-up included).
+    pub iteration: u64,
+    /// Records in the chain's draws file that belong to the run.
+    pub records: u64,
+    /// The current state.
+    pub state: ChainState,
+    /// The chain's random stream.
+    pub rng: RngState,
+    /// The warm-up schedule.
+    pub warmup: Warmup,
+    /// The step size of the sampling phase (valid once the warm-up is done).
+    pub step_size: f64,
+    /// Acceptance, divergence and rejection counters.
+    pub stats: ChainStats,
+    /// Running moments of the kept draws (model space).
+    pub moments: Welford,
+}
+
+/// The saved state of a whole sampling run.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Checkpoint {
+    /// The varpost version that wrote it.
+    pub crate_version: String,
+    /// Name of the problem.
+    pub problem: String,
+    /// Dimension.
+    pub dim: usize,
+    /// Preconditioner kind.
+    pub precond: String,
+    /// [`Target::fingerprint`]: problem name, dimension, analysis and preconditioner.
+    pub target_fingerprint: u64,
+    /// The run's settings.
+    pub config: SampleConfig,
+    /// Per chain.
+    pub chains: Vec<ChainCheckpoint>,
+    /// Evaluations during the warm-up so far.
+    pub counts_warmup: EvalCounts,
+    /// Evaluations during sampling so far.
+    pub counts_sampling: EvalCounts,
+    /// Whether the run had finished when this was written.
+    pub complete: bool,
+}
+
+impl Checkpoint {
+    /// Writes the checkpoint into `out_dir` atomically.
+    pub fn save(&self, out_dir: &Path) -> Result<()> {
+        let path = checkpoint_path(out_dir);
+        let tmp = out_dir.join(format!("{FILE_NAME}.tmp"));
+        let payload = serde_json::to_vec(self)
+            .map_err(|e| Error::format(&path, format!("cannot encode the sampler state: {e}")))?;
+        let mut h = Fnv64::new();
+        h.write(&payload);
+        let io = |p: &Path, e| Error::io(p, e);
+        let mut f = File::create(&tmp).map_err(|e| io(&tmp, e))?;
+        writeln!(
+            f,
+            "varpost-checkpoint {FORMAT_VERSION} fnv1a64={:016x}",
+            h.finish()
+        )
+        .and_then(|_| f.write_all(&payload))
+        .and_then(|_| f.sync_all())
+        .map_err(|e| io(&tmp, e))?;
+        drop(f);
+        std::fs::rename(&tmp, &path).map_err(|e| io(&path, e))?;
+        // Make the rename itself durable.
+        File::open(out_dir)
+            .and_then(|d| d.sync_all())
+            .map_err(|e| io(out_dir, e))?;
+        Ok(())
+    }
+
+    /// Reads and verifies the checkpoint of `out_dir`; a missing, corrupt or foreign file is an error
+    /// that says so.
+    pub fn load(out_dir: &Path) -> Result<Self> {
+        let path = checkpoint_path(out_dir);
+        let bytes = std::fs::read(&path).map_err(|e| {
+            if e.kind() == std::io::ErrorKind::NotFound {
+                Error::Config(format!(
+                    "{} holds no sampler checkpoint ({FILE_NAME}): there is no run to resume there",
+                    out_dir.display()
+                ))
+            } else {
+                Error::io(&path, e)
+            }
+        })?;
+        Checkpoint::decode(&path, &bytes)
+    }
+
+    fn decode(path: &Path, bytes: &[u8]) -> Result<Self> {
+        let bad = |m: String| Error::format(path, m);
+        let nl = bytes
+            .iter()
+            .position(|&b| b == b'\n')
+            .ok_or_else(|| bad("not a varpost checkpoint (no header line)".into()))?;
+        let head = std::str::from_utf8(&bytes[..nl])
+            .map_err(|_| bad("not a varpost checkpoint (header is not text)".into()))?;
+        let parts: Vec<&str> = head.split(' ').collect();
+        if parts.len() != 3 || parts[0] != "varpost-checkpoint" {
+            return Err(bad("not a varpost checkpoint (unknown header)".into()));
+        }
+        if parts[1] != FORMAT_VERSION.to_string() {
+            return Err(bad(format!(
+                "checkpoint format version {} cannot be read by this build (version {FORMAT_VERSION})",
+                parts[1]
+            )));
+        }
+        let want = parts[2]
+            .strip_prefix("fnv1a64=")
+            .and_then(|h| u64::from_str_radix(h, 16).ok())
+            .ok_or_else(|| bad("checkpoint header has no readable checksum".into()))?;
+        let payload = &bytes[nl + 1..];
+        let mut h = Fnv64::new();
+        h.write(payload);
+        if h.finish() != want {
+            return Err(bad(
+                "checkpoint is corrupt (checksum mismatch): it cannot be resumed; start a new run in \
+                 an empty folder"
+                    .into(),
+            ));
+        }
+        serde_json::from_slice(payload)
+            .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))
+    }
+
+    /// Checks that this checkpoint belongs to `target` and `config`, naming the first difference. All
+    /// settings must be equal but `checkpoint_every`.
+    pub fn check_matches(&self, target: &Target<'_>, config: &SampleConfig) -> Result<()> {
+        let path = PathBuf::from(FILE_NAME);
+        let bad = |m: String| Err(Error::format(&path, m));
+        let here = env!("CARGO_PKG_VERSION");
+        if self.crate_version != here {
+            return bad(format!(
+                "checkpoint was written by varpost {}, this is {here}: resume with that version",
+                self.crate_version
+            ));
+        }
+        if self.problem != target.name() {
+            return bad(format!(
+                "checkpoint is for problem '{}', not '{}'",
+                self.problem,
+                target.name()
+            ));
+        }
+        if self.dim != target.dim() {
+            return bad(format!(
+                "checkpoint is for dimension {}, the problem has dimension {}",
+                self.dim,
+                target.dim()
+            ));
+        }
+        if self.precond != target.precond().kind() {
+            return bad(format!(
+                "checkpoint used the {} preconditioner, this run the {}",
+                self.precond,
+                target.precond().kind()
+            ));
+        }
+        if self.target_fingerprint != target.fingerprint() {
+            return bad(
+                "checkpoint was made with another analysis or preconditioner (fingerprint \
+                        differs): resume with the same analysis and Hessian"
+                    .into(),
+            );
+        }
+        // The checkpoint interval does not change what the chains compute, so it may differ.
+        let saved = SampleConfig {
+            checkpoint_every: config.checkpoint_every,
+            ..self.config.clone()
+        };
+        if &saved != config {
+            return bad(format!(
+                "checkpoint settings differ from this run's: saved {:?}, given {:?}",
+                self.config, config
+            ));
+        }
+        if self.chains.len() != config.chains {
+            return bad(format!(
+                "checkpoint holds {} chains, expected {}",
+                self.chains.len(),
+                config.chains
+            ));
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rng_state_round_trips_mid_block() {
+        let mut a = ChainRng::seed_from_u64(7);
+        a.set_stream(3);
+        let _: Vec<u32> = (0..5).map(|_| rand::Rng::next_u32(&mut a)).collect();
+        let mut b = RngState::save(&a).restore();
+        for _ in 0..100 {
+            assert_eq!(rand::Rng::next_u64(&mut a), rand::Rng::next_u64(&mut b));
+        }
+    }
+
+    #[test]
+    fn a_missing_checkpoint_says_so() {
+        let e = Checkpoint::load(Path::new("/nonexistent-varpost-folder")).unwrap_err();
+        assert!(e.to_string().contains("no run to resume"), "{e}");
+    }
+
+    #[test]
+    fn corrupt_and_foreign_files_are_refused() {
+        let p = PathBuf::from("x");
+        assert!(Checkpoint::decode(&p, b"hello")
+            .unwrap_err()
+            .to_string()
+            .contains("header"));
+        let e = Checkpoint::decode(&p, b"varpost-checkpoint 1 fnv1a64=0000000000000000\n{}");
+        assert!(e.unwrap_err().to_string().contains("checksum"));
+        let e = Checkpoint::decode(&p, b"varpost-checkpoint 99 fnv1a64=0\n{}");
+        assert!(e.unwrap_err().to_string().contains("version 99"));
+    }
+}
