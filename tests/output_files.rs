@@ -11,13 +11,14 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
 use serde_json::Value;
+use varpost::diagnostics::{component_stats, ComponentStats};
 use varpost::output::ensemble::{write_ensemble, EnsembleInfo, Member};
 use varpost::output::html::{write_report, Figure, ReportPage};
 use varpost::output::plots::{
     autocorrelation_plot, marginal_plot, std_plot, trace_plot, ChainSeries, Marginal,
     MARGINAL_PANEL, PANEL_HEIGHT, STD_SIZE, TITLE_HEIGHT, WIDTH,
 };
-use varpost::output::table::{write_components, ComponentStats, COMPONENT_COLUMNS};
+use varpost::output::table::{write_components, ComponentTable, COMPONENT_COLUMNS};
 use varpost::Error;
 
 /// The Python interpreter with numpy, scipy and netCDF4: $VARPOST_PYTHON, else the project's test
@@ -522,22 +523,17 @@ fn report_links_resolve_to_decodable_pictures_and_text_is_escaped() {
     // The table note links components.csv only when the file is there.
     let names: Vec<String> = (0..30).map(|i| format!("x{i}")).collect();
     let v = vec![1.0; 30];
-    write_components(
-        &dir,
-        &ComponentStats {
-            names: &names,
-            analysis: &v,
-            background_std: None,
-            laplace_std: None,
-            posterior_mean: &v,
-            posterior_std: &v,
-            mcse_mean: &v,
-            ess_bulk: &v,
-            ess_tail: &v,
-            rhat: &v,
-        },
-    )
-    .unwrap();
+    let chains = ar1_chains(4, 100, 0.5, 0.0, 4);
+    let views: Vec<&[f64]> = chains.iter().map(Vec::as_slice).collect();
+    let stats = vec![component_stats(&views).unwrap(); 30];
+    let table = ComponentTable {
+        names: &names,
+        analysis: &v,
+        background_std: None,
+        laplace_std: None,
+        stats: &stats,
+    };
+    write_components(&dir, &table).unwrap();
     let path = write_report(&dir, &page).unwrap();
     let html = std::fs::read_to_string(&path).unwrap();
 
@@ -608,19 +604,29 @@ fn components_csv_parses_with_the_expected_header() {
         col(0.8),
         col(0.9),
     );
-    let stats = ComponentStats {
+    let stats: Vec<ComponentStats> = (0..n)
+        .map(|i| ComponentStats {
+            mean: m[i],
+            sd: s[i],
+            rhat: r[i],
+            ess_bulk: eb[i],
+            ess_tail: et[i],
+            mcse_mean: e[i],
+            mcse_sd: f64::NAN,
+            q05: f64::NAN,
+            q95: f64::NAN,
+            mcse_q05: f64::NAN,
+            mcse_q95: f64::NAN,
+        })
+        .collect();
+    let table = ComponentTable {
         names: &names,
         analysis: &a,
         background_std: Some(&b),
         laplace_std: None,
-        posterior_mean: &m,
-        posterior_std: &s,
-        mcse_mean: &e,
-        ess_bulk: &eb,
-        ess_tail: &et,
-        rhat: &r,
+        stats: &stats,
     };
-    let path = write_components(&dir, &stats).unwrap();
+    let path = write_components(&dir, &table).unwrap();
     // Python's csv module (RFC 4180 dialect) reads it; float() parses each value.
     let got = run_python(
         r#"
@@ -664,15 +670,14 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
         serde_json::json!([null, null, null, null])
     );
 
-    let short = vec![1.0; 3];
-    let bad = ComponentStats {
-        rhat: &short,
-        ..stats
+    let bad = ComponentTable {
+        stats: &stats[..3],
+        ..table
     };
     let e = write_components(&dir, &bad).unwrap_err();
     assert!(
         e.to_string()
-            .contains("column rhat has 3 values for 4 components"),
+            .contains("component statistics has 3 values for 4 components"),
         "{e}"
     );
 }

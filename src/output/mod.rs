@@ -11,6 +11,7 @@ pub use summary::Summary;
 
 use std::path::{Path, PathBuf};
 
+use crate::diagnostics::ComponentStats;
 use crate::error::{Error, Result};
 
 /// Writes `text` to `path` atomically: a temporary file in the same folder, then a rename, so a reader
@@ -50,19 +51,25 @@ pub(crate) fn commit(tmp: &Path, path: &Path) -> Result<()> {
 
 /// Component indices ordered least-converged first: by R-hat descending, then bulk ESS ascending. A
 /// non-finite R-hat or ESS (a stuck chain, too few draws) counts as worst.
-pub fn worst_first(rhat: &[f64], ess_bulk: &[f64]) -> Vec<usize> {
-    let key = |i: usize| {
-        let r = rhat.get(i).copied().unwrap_or(f64::NAN);
-        let e = ess_bulk.get(i).copied().unwrap_or(f64::NAN);
+pub fn worst_first(stats: &[ComponentStats]) -> Vec<usize> {
+    let key = |s: &ComponentStats| {
         (
-            if r.is_finite() { r } else { f64::INFINITY },
-            if e.is_finite() { e } else { f64::NEG_INFINITY },
+            if s.rhat.is_finite() {
+                s.rhat
+            } else {
+                f64::INFINITY
+            },
+            if s.ess_bulk.is_finite() {
+                s.ess_bulk
+            } else {
+                f64::NEG_INFINITY
+            },
         )
     };
-    let mut order: Vec<usize> = (0..rhat.len().max(ess_bulk.len())).collect();
+    let mut order: Vec<usize> = (0..stats.len()).collect();
     order.sort_by(|&a, &b| {
-        let (ra, ea) = key(a);
-        let (rb, eb) = key(b);
+        let (ra, ea) = key(&stats[a]);
+        let (rb, eb) = key(&stats[b]);
         rb.total_cmp(&ra).then(ea.total_cmp(&eb)).then(a.cmp(&b))
     });
     order
@@ -118,7 +125,24 @@ mod tests {
         // ESS, and an undefined diagnostic is worst of all.
         let rhat = [1.001, 1.2, f64::NAN, 1.001, 1.05];
         let ess = [900.0, 30.0, 400.0, 200.0, 100.0];
-        assert_eq!(worst_first(&rhat, &ess), vec![2, 1, 4, 3, 0]);
+        let stats: Vec<ComponentStats> = rhat
+            .iter()
+            .zip(ess)
+            .map(|(&rhat, ess_bulk)| ComponentStats {
+                mean: 0.0,
+                sd: 1.0,
+                rhat,
+                ess_bulk,
+                ess_tail: ess_bulk,
+                mcse_mean: 0.1,
+                mcse_sd: 0.1,
+                q05: -1.6,
+                q95: 1.6,
+                mcse_q05: 0.1,
+                mcse_q95: 0.1,
+            })
+            .collect();
+        assert_eq!(worst_first(&stats), vec![2, 1, 4, 3, 0]);
     }
 
     #[test]

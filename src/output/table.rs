@@ -3,6 +3,7 @@
 use std::path::{Path, PathBuf};
 
 use super::write_atomic;
+use crate::diagnostics::ComponentStats;
 use crate::error::{Error, Result};
 
 /// Writes a CSV with a `component` and a `name` column followed by the given columns. Names holding a
@@ -33,21 +34,16 @@ fn csv_field(s: &str) -> String {
     }
 }
 
-/// The per-component results of a sampling run, for DIR/components.csv. Every slice has one value per
-/// component; columns that are not known are `None` and written as `NaN`.
+/// The per-component results of a sampling run, for DIR/components.csv and the report's table: one
+/// entry per component in every slice; columns that are not known are `None` and written as `NaN`.
 #[derive(Debug, Clone, Copy)]
-pub struct ComponentStats<'a> {
+pub struct ComponentTable<'a> {
     pub names: &'a [String],
     pub analysis: &'a [f64],
     pub background_std: Option<&'a [f64]>,
     pub laplace_std: Option<&'a [f64]>,
-    pub posterior_mean: &'a [f64],
-    pub posterior_std: &'a [f64],
-    /// Monte Carlo standard error of the posterior mean.
-    pub mcse_mean: &'a [f64],
-    pub ess_bulk: &'a [f64],
-    pub ess_tail: &'a [f64],
-    pub rhat: &'a [f64],
+    /// Posterior summaries and convergence diagnostics of each component.
+    pub stats: &'a [ComponentStats],
 }
 
 /// The header of components.csv, in order.
@@ -67,36 +63,43 @@ pub const COMPONENT_COLUMNS: [&str; 11] = [
 
 /// Writes DIR/components.csv (one row per component, columns [`COMPONENT_COLUMNS`]) and returns its
 /// path.
-pub fn write_components(dir: &Path, stats: &ComponentStats<'_>) -> Result<PathBuf> {
-    let n = stats.names.len();
-    let columns: [(&str, Option<&[f64]>); 9] = [
-        ("analysis", Some(stats.analysis)),
-        ("background_std", stats.background_std),
-        ("laplace_std", stats.laplace_std),
-        ("posterior_mean", Some(stats.posterior_mean)),
-        ("posterior_std", Some(stats.posterior_std)),
-        ("mcse_mean", Some(stats.mcse_mean)),
-        ("ess_bulk", Some(stats.ess_bulk)),
-        ("ess_tail", Some(stats.ess_tail)),
-        ("rhat", Some(stats.rhat)),
-    ];
-    for (name, c) in &columns {
-        if let Some(c) = c {
-            if c.len() != n {
-                return Err(Error::Config(format!(
-                    "components.csv: column {name} has {} values for {n} components",
-                    c.len()
-                )));
-            }
+pub fn write_components(dir: &Path, table: &ComponentTable<'_>) -> Result<PathBuf> {
+    let n = table.names.len();
+    for (name, len) in [
+        ("analysis", Some(table.analysis.len())),
+        ("background_std", table.background_std.map(<[f64]>::len)),
+        ("laplace_std", table.laplace_std.map(<[f64]>::len)),
+        ("component statistics", Some(table.stats.len())),
+    ] {
+        if let Some(len) = len.filter(|&l| l != n) {
+            return Err(Error::Config(format!(
+                "components.csv: {name} has {len} values for {n} components"
+            )));
         }
     }
     let missing = vec![f64::NAN; n];
-    let cols: Vec<(&str, &[f64])> = columns
-        .iter()
-        .map(|(h, c)| (*h, c.unwrap_or(&missing[..])))
-        .collect();
+    let stat = |f: fn(&ComponentStats) -> f64| table.stats.iter().map(f).collect::<Vec<f64>>();
+    let (mean, sd, mcse, bulk, tail, rhat) = (
+        stat(|s| s.mean),
+        stat(|s| s.sd),
+        stat(|s| s.mcse_mean),
+        stat(|s| s.ess_bulk),
+        stat(|s| s.ess_tail),
+        stat(|s| s.rhat),
+    );
+    let columns: [(&str, &[f64]); 9] = [
+        ("analysis", table.analysis),
+        ("background_std", table.background_std.unwrap_or(&missing)),
+        ("laplace_std", table.laplace_std.unwrap_or(&missing)),
+        ("posterior_mean", &mean),
+        ("posterior_std", &sd),
+        ("mcse_mean", &mcse),
+        ("ess_bulk", &bulk),
+        ("ess_tail", &tail),
+        ("rhat", &rhat),
+    ];
     let path = dir.join("components.csv");
-    write_columns(&path, stats.names, &cols)?;
+    write_columns(&path, table.names, &columns)?;
     Ok(path)
 }
 
@@ -127,7 +130,7 @@ fn whole(v: f64) -> String {
     }
 }
 
-impl ComponentStats<'_> {
+impl ComponentTable<'_> {
     /// The component table of the report: column headers and one row of text per component, in the
     /// order given (e.g. [`super::worst_first`]); indices beyond the components are skipped.
     pub fn report_rows(&self, order: &[usize]) -> (Vec<String>, Vec<Vec<String>>) {
@@ -147,16 +150,17 @@ impl ComponentStats<'_> {
             |v: Option<&[f64]>, i: usize| v.and_then(|v| v.get(i)).copied().unwrap_or(f64::NAN);
         let rows = order
             .iter()
-            .filter(|&&i| i < self.names.len())
+            .filter(|&&i| i < self.names.len() && i < self.stats.len())
             .map(|&i| {
+                let s = &self.stats[i];
                 vec![
                     self.names[i].clone(),
-                    significant(at(Some(self.rhat), i), 4),
-                    whole(at(Some(self.ess_bulk), i)),
-                    whole(at(Some(self.ess_tail), i)),
-                    significant(at(Some(self.posterior_mean), i), 4),
-                    significant(at(Some(self.mcse_mean), i), 2),
-                    significant(at(Some(self.posterior_std), i), 3),
+                    significant(s.rhat, 4),
+                    whole(s.ess_bulk),
+                    whole(s.ess_tail),
+                    significant(s.mean, 4),
+                    significant(s.mcse_mean, 2),
+                    significant(s.sd, 3),
                     significant(at(self.laplace_std, i), 3),
                     significant(at(self.background_std, i), 3),
                     significant(at(Some(self.analysis), i), 4),
@@ -184,23 +188,36 @@ mod tests {
         assert_eq!(significant(0.0, 3), "0");
     }
 
+    /// Statistics with the given R-hat and bulk ESS, the rest set to `v`.
+    fn stats(rhat: f64, ess_bulk: f64, v: f64) -> ComponentStats {
+        ComponentStats {
+            mean: v,
+            sd: v,
+            rhat,
+            ess_bulk,
+            ess_tail: v,
+            mcse_mean: v,
+            mcse_sd: v,
+            q05: v,
+            q95: v,
+            mcse_q05: v,
+            mcse_q95: v,
+        }
+    }
+
     #[test]
     fn report_rows_follow_the_order_given() {
         let names: Vec<String> = vec!["a".into(), "b,c".into()];
         let v = [1.0, 2.0];
-        let s = ComponentStats {
+        let stats = [stats(1.0012, 100.4, 1.0), stats(1.2, 2000.6, 2.0)];
+        let t = ComponentTable {
             names: &names,
             analysis: &v,
             background_std: None,
             laplace_std: Some(&v),
-            posterior_mean: &v,
-            posterior_std: &v,
-            mcse_mean: &v,
-            ess_bulk: &[100.4, 2000.6],
-            ess_tail: &v,
-            rhat: &[1.0012, 1.2],
+            stats: &stats,
         };
-        let (cols, rows) = s.report_rows(&[1, 0, 7]);
+        let (cols, rows) = t.report_rows(&[1, 0, 7]);
         assert_eq!(cols.len(), rows[0].len());
         assert_eq!(rows.len(), 2);
         assert_eq!(rows[0][..3], ["b,c", "1.200", "2001"]);
