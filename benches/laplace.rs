@@ -5,7 +5,11 @@
 //! time, largest relative variance error, peak resident memory VmHWM) and exits non-zero when a target
 //! is missed: variances within 1% of the closed form, peak memory under 1 GB.
 
+mod common;
+
 use std::time::Instant;
+
+use common::peak_rss;
 
 use varpost::precond::{laplace, LaplaceMethod, LaplaceOptions};
 use varpost::problem::linear_gaussian::{LinearGaussian, LinearGaussianConfig};
@@ -35,14 +39,6 @@ impl Problem for View<'_> {
     fn prior(&self) -> Option<&dyn Prior> {
         self.problem.prior()
     }
-}
-
-/// Peak resident set size in bytes, from /proc/self/status (Linux).
-fn peak_rss() -> Option<u64> {
-    let status = std::fs::read_to_string("/proc/self/status").ok()?;
-    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
-    let kb: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
-    Some(kb * 1024)
 }
 
 fn case<P: Problem>(name: &str, problem: &Counted<P>, mean: &[f64], truth: &[f64]) -> bool {

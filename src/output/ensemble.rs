@@ -1,0 +1,419 @@
+//! DIR/ensemble.nc: the ensemble members and the per-component summaries, as a NetCDF classic file
+//! with CF-style attributes.
+//!
+//! Layout (the NetCDF-3 classic data model):
+//! ```text
+//! dimensions:  member = UNLIMITED, component = n, name_strlen = longest name (only with names)
+//! variables:   double state(member, component)       the ensemble members
+//!              int    chain(member), draw(member)     where each member comes from
+//!              double analysis(component)             the MAP
+//!              double background(component), posterior_mean(component), posterior_variance(component),
+//!                     laplace_variance(component), background_variance(component)   where known
+//!              char   component_name(component, name_strlen)                        where given
+//! global:      title, source, history, Conventions = "CF-1.8", comment (the caution)
+//! ```
+//! The netcdf3 crate fixes the number of records when the header is written, so the member count is
+//! taken up front and the members are streamed from an iterator, one at a time.
+
+use std::cell::RefCell;
+use std::fs::File;
+use std::io::{BufWriter, Seek, SeekFrom, Write};
+use std::path::{Path, PathBuf};
+use std::rc::Rc;
+
+use netcdf3::{DataSet, FileWriter, Version, WriteError};
+
+use super::summary::CAUTION;
+use super::{commit, temp_sibling};
+use crate::error::{Error, Result};
+
+/// The file name inside the output folder.
+pub const FILE_NAME: &str = "ensemble.nc";
+
+/// One ensemble member: a draw of the control vector and where it comes from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Member {
+    /// The chain index.
+    pub chain: usize,
+    /// The draw index within its chain.
+    pub draw: usize,
+    /// The state, one value per component.
+    pub state: Vec<f64>,
+}
+
+/// Everything in ensemble.nc except the members themselves.
+#[derive(Debug, Clone, Default)]
+pub struct EnsembleInfo<'a> {
+    /// The `title` global attribute (e.g. "varpost posterior ensemble: lorenz96").
+    pub title: &'a str,
+    /// The command line of the run, for the `history` attribute.
+    pub command_line: &'a str,
+    /// The analysis (MAP); its length is the number of components.
+    pub analysis: &'a [f64],
+    /// Component names, where the problem gives them.
+    pub names: Option<&'a [String]>,
+    /// Units of the state components (UDUNITS syntax, e.g. "K" or "m s-1"), where known; variances get
+    /// the square of them.
+    pub units: Option<&'a str>,
+    pub background: Option<&'a [f64]>,
+    pub background_variance: Option<&'a [f64]>,
+    pub posterior_mean: Option<&'a [f64]>,
+    pub posterior_variance: Option<&'a [f64]>,
+    pub laplace_variance: Option<&'a [f64]>,
+}
+
+/// The per-component vectors of the file: variable name, long_name, whether its units are squared.
+fn component_vectors<'a>(
+    info: &EnsembleInfo<'a>,
+) -> Vec<(&'static str, &'static str, bool, &'a [f64])> {
+    let mut v = vec![(
+        "analysis",
+        "analysis (maximum a posteriori state)",
+        false,
+        info.analysis,
+    )];
+    let optional = [
+        ("background", "background state", false, info.background),
+        (
+            "background_variance",
+            "background-error variance (diagonal of B)",
+            true,
+            info.background_variance,
+        ),
+        (
+            "posterior_mean",
+            "posterior mean estimated from the ensemble",
+            false,
+            info.posterior_mean,
+        ),
+        (
+            "posterior_variance",
+            "posterior variance estimated from the ensemble",
+            true,
+            info.posterior_variance,
+        ),
+        (
+            "laplace_variance",
+            "Laplace (Gaussian at the analysis) posterior variance: diagonal of the inverse Hessian",
+            true,
+            info.laplace_variance,
+        ),
+    ];
+    for (name, long, sq, data) in optional {
+        if let Some(d) = data {
+            v.push((name, long, sq, d));
+        }
+    }
+    v
+}
+
+/// Squares a UDUNITS unit string: "K" -> "K^2", "m s-1" -> "(m s-1)^2".
+fn squared_units(u: &str) -> String {
+    let u = u.trim();
+    if u.chars().all(|c| c.is_ascii_alphabetic()) {
+        format!("{u}^2")
+    } else {
+        format!("({u})^2")
+    }
+}
+
+/// Writes DIR/ensemble.nc atomically (a temporary file, then a rename) and returns its path.
+///
+/// `n_members` is the number of members `members` yields; each is written as soon as it arrives, so
+/// memory stays at one member. A member of the wrong length, a chain or draw index beyond the NetCDF
+/// `int` range, or a member count different from `n_members` is an error and leaves no file behind.
+pub fn write_ensemble<I>(
+    dir: &Path,
+    info: &EnsembleInfo<'_>,
+    n_members: usize,
+    members: I,
+) -> Result<PathBuf>
+where
+    I: IntoIterator<Item = Result<Member>>,
+{
+    let path = dir.join(FILE_NAME);
+    let n = info.analysis.len();
+    if n == 0 {
+        return Err(Error::Config(
+            "cannot write an ensemble of a zero-length state".into(),
+        ));
+    }
+    for (name, _, _, data) in component_vectors(info) {
+        if data.len() != n {
+            return Err(Error::Config(format!(
+                "{name} has {} values but the analysis has {n} components",
+                data.len()
+            )));
+        }
+    }
+    if let Some(names) = info.names {
+        if names.len() != n {
+            return Err(Error::Config(format!(
+                "{} component names given for {n} components",
+                names.len()
+            )));
+        }
+    }
+    let data_set = define(info, n, n_members).map_err(|e| {
+        Error::Config(format!(
+            "cannot define the layout of {}: {e}",
+            path.display()
+        ))
+    })?;
+
+    let tmp = temp_sibling(&path)?;
+    let result = write_file(&tmp, &data_set, info, n_members, members);
+    match result {
+        Ok(()) => commit(&tmp, &path).map(|()| path),
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            Err(e)
+        }
+    }
+}
+
+/// The header: dimensions, variables and attributes.
+fn define(
+    info: &EnsembleInfo<'_>,
+    n: usize,
+    n_members: usize,
+) -> std::result::Result<DataSet, netcdf3::InvalidDataSet> {
+    let mut ds = DataSet::new();
+    ds.set_unlimited_dim("member", n_members)?;
+    ds.add_fixed_dim("component", n)?;
+
+    let title = if info.title.is_empty() {
+        "varpost posterior ensemble"
+    } else {
+        info.title
+    };
+    ds.add_global_attr_string("title", title)?;
+    ds.add_global_attr_string("source", format!("varpost {}", env!("CARGO_PKG_VERSION")))?;
+    let when = super::utc_now();
+    let history = if info.command_line.is_empty() {
+        format!("{when}: written by varpost")
+    } else {
+        format!("{when}: {}", info.command_line)
+    };
+    ds.add_global_attr_string("history", history)?;
+    ds.add_global_attr_string("Conventions", "CF-1.8")?;
+    ds.add_global_attr_string("comment", CAUTION)?;
+
+    let units = info.units.map(str::trim).filter(|u| !u.is_empty());
+    ds.add_var_f64("state", &["member", "component"])?;
+    ds.add_var_attr_string("state", "long_name", "posterior ensemble member state")?;
+    if let Some(u) = units {
+        ds.add_var_attr_string("state", "units", u)?;
+    }
+    ds.add_var_i32("chain", &["member"])?;
+    ds.add_var_attr_string(
+        "chain",
+        "long_name",
+        "index of the chain the member comes from",
+    )?;
+    ds.add_var_i32("draw", &["member"])?;
+    ds.add_var_attr_string(
+        "draw",
+        "long_name",
+        "index of the draw within its chain (after warm-up)",
+    )?;
+    for (name, long, squared, _) in component_vectors(info) {
+        ds.add_var_f64(name, &["component"])?;
+        ds.add_var_attr_string(name, "long_name", long)?;
+        if let Some(u) = units {
+            let u = if squared {
+                squared_units(u)
+            } else {
+                u.to_string()
+            };
+            ds.add_var_attr_string(name, "units", u)?;
+        }
+    }
+    if let Some(names) = info.names {
+        let strlen = names.iter().map(|s| s.len()).max().unwrap_or(0).max(1);
+        ds.add_fixed_dim("name_strlen", strlen)?;
+        ds.add_var_u8("component_name", &["component", "name_strlen"])?;
+        ds.add_var_attr_string("component_name", "long_name", "name of the component")?;
+    }
+    Ok(ds)
+}
+
+/// A buffered file the netcdf3 writer can own while we keep a handle to flush and sync it afterwards
+/// (the writer flushes nothing itself, and a buffer dropped unflushed hides write errors).
+#[derive(Clone)]
+struct SharedFile(Rc<RefCell<BufWriter<File>>>);
+
+impl Write for SharedFile {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.0.borrow_mut().write(buf)
+    }
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.0.borrow_mut().flush()
+    }
+}
+
+impl Seek for SharedFile {
+    fn seek(&mut self, pos: SeekFrom) -> std::io::Result<u64> {
+        self.0.borrow_mut().seek(pos)
+    }
+}
+
+/// Explains a netcdf3 write error (the type implements neither Display nor Error).
+fn describe(e: WriteError) -> String {
+    match e {
+        WriteError::IOErrorKind(k) => format!("input/output error: {k}"),
+        WriteError::VariableNotDefined(v) => format!("variable {v} is not defined"),
+        WriteError::VariableMismatchDataType { var_name, req, get } => {
+            format!("variable {var_name} has type {req:?}, got {get:?}")
+        }
+        WriteError::VariableMismatchDataLength { var_name, req, get } => {
+            format!("variable {var_name} takes {req} values, got {get}")
+        }
+        WriteError::RecordMismatchDataLength { var_name, req, get } => {
+            format!("a record of {var_name} takes {req} values, got {get}")
+        }
+        WriteError::RecordIndexExceeded { index, num_records } => {
+            format!("record {index} is beyond the {num_records} records of the file")
+        }
+        WriteError::ClassicVersionNotPossible => {
+            "the data are too large for the classic format".into()
+        }
+        WriteError::HeaderAlreadyDefined => "the header was already written".into(),
+        WriteError::HeaderNotDefined => "the header was not written".into(),
+        WriteError::Unexpected => "unexpected failure of the NetCDF writer".into(),
+    }
+}
+
+fn write_file<I>(
+    tmp: &Path,
+    ds: &DataSet,
+    info: &EnsembleInfo<'_>,
+    n_members: usize,
+    members: I,
+) -> Result<()>
+where
+    I: IntoIterator<Item = Result<Member>>,
+{
+    let n = info.analysis.len();
+    let nc = |e: WriteError| Error::format(tmp, format!("cannot write NetCDF: {}", describe(e)));
+    let file = File::create(tmp).map_err(|e| Error::io(tmp, e))?;
+    let shared = SharedFile(Rc::new(RefCell::new(BufWriter::with_capacity(
+        1 << 20,
+        file,
+    ))));
+    let name = tmp.to_string_lossy().into_owned();
+    let mut w = FileWriter::open_seek_write(&name, Box::new(shared.clone())).map_err(nc)?;
+    // Classic (32-bit offsets) where it fits; the 64-bit-offset variant of the same data model beyond.
+    match w.set_def(ds, Version::Classic, 0) {
+        Ok(()) => {}
+        Err(WriteError::ClassicVersionNotPossible) => {
+            w = FileWriter::open_seek_write(&name, Box::new(shared.clone())).map_err(nc)?;
+            w.set_def(ds, Version::Offset64Bit, 0).map_err(nc)?;
+        }
+        Err(e) => return Err(nc(e)),
+    }
+    // The header just written ends here; the data part follows.
+    let header_size = shared
+        .0
+        .borrow_mut()
+        .stream_position()
+        .map_err(|e| Error::io(tmp, e))?;
+
+    for (name, _, _, data) in component_vectors(info) {
+        w.write_var_f64(name, data).map_err(nc)?;
+    }
+    if let Some(names) = info.names {
+        let strlen = ds.dim_size("name_strlen").unwrap_or(1);
+        let mut chars = vec![0u8; n * strlen];
+        for (i, s) in names.iter().enumerate() {
+            chars[i * strlen..i * strlen + s.len()].copy_from_slice(s.as_bytes());
+        }
+        w.write_var_u8("component_name", &chars).map_err(nc)?;
+    }
+
+    // The records are written here, not by the netcdf3 writer: it keeps a set of the records written
+    // per variable and merges each new record into it, which is quadratic in the member count (tens
+    // of seconds for 20 000 members). The layout is the one its header announces (Unidata, "The
+    // NetCDF Classic Format Specification"): after the header and the fixed-size variables, record
+    // after record, each holding the record variables in definition order, each padded to 4 bytes.
+    let fixed: usize = ds
+        .get_vars()
+        .iter()
+        .filter(|v| !v.is_record_var())
+        .map(|v| v.chunk_size())
+        .sum();
+    let record_vars: Vec<(&str, usize)> = ds
+        .get_vars()
+        .into_iter()
+        .filter(|v| v.is_record_var())
+        .map(|v| (v.name(), v.chunk_size()))
+        .collect();
+    if record_vars != [("state", 8 * n), ("chain", 4), ("draw", 4)]
+        || ds.record_size() != Some(8 * n + 8)
+    {
+        return Err(Error::Numerical(format!(
+            "unexpected NetCDF record layout {record_vars:?}; please report this"
+        )));
+    }
+    // The fixed-size variables are complete; nothing is left for the writer to fill in, and its
+    // closing fill would overwrite the records written below.
+    drop(w);
+
+    let mut out = shared.0.borrow_mut();
+    out.seek(SeekFrom::Start(header_size + fixed as u64))
+        .map_err(|e| Error::io(tmp, e))?;
+    let mut record = Vec::with_capacity(8 * n + 8);
+    let mut count = 0usize;
+    for m in members {
+        let m = m?;
+        if count >= n_members {
+            return Err(Error::Config(format!(
+                "more ensemble members than the {n_members} announced"
+            )));
+        }
+        if m.state.len() != n {
+            return Err(Error::Config(format!(
+                "ensemble member {count} (chain {}, draw {}) has {} components, expected {n}",
+                m.chain,
+                m.draw,
+                m.state.len()
+            )));
+        }
+        let index = |v: usize, what: &str| {
+            i32::try_from(v).map_err(|_| {
+                Error::Config(format!(
+                    "{what} index {v} of ensemble member {count} does not fit a NetCDF int"
+                ))
+            })
+        };
+        let (chain, draw) = (index(m.chain, "chain")?, index(m.draw, "draw")?);
+        record.clear();
+        for x in &m.state {
+            record.extend_from_slice(&x.to_be_bytes());
+        }
+        record.extend_from_slice(&chain.to_be_bytes());
+        record.extend_from_slice(&draw.to_be_bytes());
+        out.write_all(&record).map_err(|e| Error::io(tmp, e))?;
+        count += 1;
+    }
+    if count != n_members {
+        return Err(Error::Config(format!(
+            "{count} ensemble members given, {n_members} announced"
+        )));
+    }
+    out.flush().map_err(|e| Error::io(tmp, e))?;
+    out.get_ref().sync_all().map_err(|e| Error::io(tmp, e))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn squared_units_keep_udunits_syntax() {
+        // UDUNITS-2 grammar: a power of a product is written with parentheses (common practice, no
+        // source).
+        assert_eq!(squared_units("K"), "K^2");
+        assert_eq!(squared_units("m s-1"), "(m s-1)^2");
+    }
+}
