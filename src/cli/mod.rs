@@ -8,6 +8,7 @@ use clap::{Args, Parser, Subcommand};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::optimize::MapConfig;
+use crate::output::progress::Progress as ProgressBars;
 use crate::pipeline::{
     self, CheckConfig, HessianRunConfig, MapRunConfig, Metric, ProblemSource, SampleRunConfig,
 };
@@ -24,6 +25,9 @@ use crate::sampler::{KernelKind, SampleConfig};
 pub struct Cli {
     #[command(subcommand)]
     pub command: Command,
+    /// No progress bars (they are also off when stderr is not a terminal).
+    #[arg(long, global = true)]
+    pub quiet: bool,
 }
 
 #[derive(Debug, Subcommand)]
@@ -77,6 +81,19 @@ pub enum Command {
     Resume {
         /// The run's output folder.
         dir: PathBuf,
+        /// Run this adapter command instead of the one recorded in the run (e.g. after moving the
+        /// code); the other adapter settings stay as recorded.
+        #[arg(long)]
+        adapter: Option<String>,
+    },
+    /// Diagnostics table, components.csv, ensemble.nc, PNG plots and report.html of a sampling run
+    /// (finished or partial).
+    Report {
+        /// The run's output folder.
+        dir: PathBuf,
+        /// Rows of the table printed (worst-converged components first).
+        #[arg(long, default_value_t = 10)]
+        rows: usize,
     },
     /// Write a synthetic scenario of a built-in problem (truth, background, observations) to a folder.
     Synth {
@@ -369,7 +386,7 @@ impl ProblemArgs {
 /// Runs a parsed command line; returns the process exit code for a completed run.
 pub fn run(cli: Cli) -> Result<i32> {
     match cli.command {
-        Command::Demo { out } => demo(&out),
+        Command::Demo { out } => demo(&out, cli.quiet),
         Command::Check {
             problem,
             start,
@@ -487,13 +504,33 @@ pub fn run(cli: Cli) -> Result<i32> {
                 loaded.description,
                 loaded.problem.dim()
             );
-            sample(&loaded, &cfg, &problem.out, false)
+            sample(&loaded, &cfg, &problem.out, false, cli.quiet)
         }
-        Command::Resume { dir } => {
-            let cfg = pipeline::read_run(&dir)?;
+        Command::Resume { dir, adapter } => {
+            let mut cfg = pipeline::read_run(&dir)?;
             println!("resuming the run in {}", dir.display());
+            if let ProblemSource::Adapter(a) = &mut cfg.source {
+                if let Some(cmd) = adapter {
+                    println!(
+                        "  adapter command overridden: {cmd} (recorded: {})",
+                        a.command
+                    );
+                    a.command = cmd;
+                } else {
+                    println!("  running the recorded adapter command: {}", a.command);
+                }
+            } else if adapter.is_some() {
+                return Err(Error::Config(
+                    "--adapter: this run used a built-in problem, not an adapter".into(),
+                ));
+            }
             let loaded = pipeline::load(&cfg.source)?;
-            sample(&loaded, &cfg, &dir, true)
+            sample(&loaded, &cfg, &dir, true, cli.quiet)
+        }
+        Command::Report { dir, rows } => {
+            let r = pipeline::run_report(&dir, &command_line())?;
+            print_report(&r, rows);
+            Ok(0)
         }
         Command::Synth { problem, set, out } => {
             if problem != "lorenz96" {
@@ -515,24 +552,78 @@ pub fn run(cli: Cli) -> Result<i32> {
     }
 }
 
+fn command_line() -> String {
+    std::env::args().collect::<Vec<_>>().join(" ")
+}
+
+/// Runs the sampling pipeline with progress bars: one counting model runs (with their rate) over the
+/// whole run, one for the chains' iterations with an ETA; then writes the report.
 fn sample(
     loaded: &pipeline::Loaded,
     cfg: &SampleRunConfig,
     out: &std::path::Path,
     resume: bool,
+    quiet: bool,
 ) -> Result<i32> {
+    use std::sync::atomic::{AtomicBool, Ordering};
     let interrupt = Interrupt::from_signals()?;
-    let progress = |_c: usize, _d: u64, _t: u64| {};
-    let o = pipeline::run_sample(loaded, cfg, out, resume, &interrupt, &progress)?;
+    let bars = ProgressBars::new(quiet);
+    let evals = bars.stage("model runs", "runs", None);
+    let total = cfg.sampler.chains as u64 * cfg.sampler.iterations();
+    let iters = bars.stage("chains", "iterations", Some(total));
+    let progress = |_c: usize, _d: u64, _t: u64| iters.inc(1);
+    let done = AtomicBool::new(false);
+    let o = std::thread::scope(|scope| {
+        scope.spawn(|| {
+            while !done.load(Ordering::Relaxed) {
+                evals.set_position(loaded.problem.counts().model_runs());
+                std::thread::sleep(std::time::Duration::from_millis(100));
+            }
+        });
+        let r = pipeline::run_sample(loaded, cfg, out, resume, &interrupt, &progress);
+        done.store(true, Ordering::Relaxed);
+        r
+    });
+    evals.finish();
+    iters.finish();
+    let o = o?;
     print_sample(&o);
-    println!("output: {}", out.display());
-    Ok(
-        if o.summary.diagnostics.as_ref().is_some_and(|d| d.converged) {
-            0
-        } else {
-            5
-        },
-    )
+    let r = pipeline::run_report(out, &command_line())?;
+    println!("report: {}", r.html.display());
+    println!(
+        "output: {} (summary.json, components.csv, ensemble.nc)",
+        out.display()
+    );
+    let converged = o.summary.diagnostics.as_ref().is_some_and(|d| d.converged);
+    Ok(if converged { 0 } else { 5 })
+}
+
+fn print_report(r: &pipeline::ReportOutcome, rows: usize) {
+    println!(
+        "{} components, {} draws per chain; worst-converged first:",
+        r.stats.len(),
+        r.draws_per_chain
+    );
+    println!(
+        "  {:<14} {:>12} {:>11} {:>11} {:>8} {:>9} {:>9} {:>10}",
+        "component", "mean", "sd", "Laplace sd", "R-hat", "bulk ESS", "tail ESS", "MCSE mean"
+    );
+    for &i in r.order.iter().take(rows) {
+        let s = &r.stats[i];
+        let lsd = r
+            .laplace_std
+            .as_ref()
+            .map_or("-".to_string(), |l| format!("{:.4e}", l[i]));
+        println!(
+            "  {:<14} {:>12.5e} {:>11.4e} {:>11} {:>8.4} {:>9.0} {:>9.0} {:>10.3e}",
+            r.names[i], s.mean, s.sd, lsd, s.rhat, s.ess_bulk, s.ess_tail, s.mcse_mean
+        );
+    }
+    if r.order.len() > rows {
+        println!("  ... {} more in components.csv", r.order.len() - rows);
+    }
+    println!("{}", r.verdict.text());
+    println!("report: {}", r.html.display());
 }
 
 fn print_sample(o: &pipeline::SampleOutcome) {
@@ -687,24 +778,80 @@ fn print_laplace(l: &crate::output::summary::LaplaceSummary) {
     );
 }
 
-fn demo(out: &std::path::Path) -> Result<i32> {
+fn demo(out: &std::path::Path, quiet: bool) -> Result<i32> {
     println!("varpost demo: the embedded Lorenz-96 scenario (invented; see demo-data/README.md)");
-    let r = pipeline::run_demo(out)?;
-    println!("{}", r.summary.description);
+    let bars = ProgressBars::new(quiet);
+    let iters = bars.stage("chains", "iterations", Some(4 * 2000));
+    let progress = |_c: usize, _d: u64, _t: u64| iters.inc(1);
+    let r = pipeline::run_demo(out, &progress)?;
+    iters.finish();
+    let s = &r.sample.summary;
+    println!("{}", s.description);
     println!("1. gradient test at the background: {}", r.check.verdict);
     println!("2. analysis (L-BFGS):");
-    print_map(&r.map);
+    if let Some(m) = &s.map {
+        println!(
+            "  cost {:.6e} -> {:.6e}; |grad J| {:.3e} -> {:.3e} in {} iterations ({})",
+            m.cost_start, m.cost, m.grad_norm_start, m.grad_norm, m.iterations, m.reason
+        );
+    }
     if let (Some(b), Some(a)) = (r.rmse_background, r.rmse_analysis) {
         println!(
             "   error against the truth (RMSE over {} sites): background {b:.3}, analysis {a:.3}",
-            r.summary.dim
+            s.dim
         );
     }
+    if let (Some(l), Some(bv), Some(p)) = (&s.laplace, &s.background_variance, &s.posterior) {
+        println!(
+            "3. Hessian at the analysis ({}), and 4. {} chains ({}): standard deviations per site",
+            l.method,
+            s.sampling.as_ref().map_or(0, |x| x.chains),
+            s.sampling.as_ref().map_or("", |x| x.kernel.as_str())
+        );
+        println!(
+            "   {:>6} {:>10} {:>10} {:>10}",
+            "site", "background", "Laplace", "posterior"
+        );
+        for i in (0..s.dim).step_by((s.dim / 10).max(1)) {
+            println!(
+                "   {:>6} {:>10.3} {:>10.3} {:>10.3}",
+                r.report.names[i],
+                bv[i].sqrt(),
+                l.variance[i].sqrt(),
+                p.variance[i].sqrt()
+            );
+        }
+        let mean = |v: &[f64]| v.iter().map(|x| x.sqrt()).sum::<f64>() / v.len() as f64;
+        println!(
+            "   mean over sites: background {:.3}, Laplace {:.3}, posterior {:.3} (the observations cut the \
+             background error by {:.0}%)",
+            mean(bv),
+            mean(&l.variance),
+            mean(&p.variance),
+            100.0 * (1.0 - mean(&l.variance) / mean(bv))
+        );
+    }
+    if let Some(c) = &s.laplace_check {
+        println!(
+            "   Laplace check: Pareto k-hat {:.2}, Kish ESS {:.0} of {} draws",
+            c.khat, c.kish_ess, c.draws
+        );
+    }
+    if let Some(d) = &s.diagnostics {
+        println!(
+            "5. diagnostics: R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
+            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
+        );
+        println!("verdict: {}", d.verdict);
+    }
     println!(
-        "evaluations: {} cost+gradient, {} cost only",
-        r.summary.evaluations.gradient, r.summary.evaluations.cost
+        "evaluations: {} model runs in all",
+        s.evaluations.model_runs()
     );
-    println!("{}", crate::output::summary::CAUTION);
-    println!("output: {}", out.display());
+    println!("report: {}", r.report.html.display());
+    println!(
+        "output: {} (summary.json, components.csv, ensemble.nc, report.html)",
+        out.display()
+    );
     Ok(0)
 }

@@ -8,8 +8,7 @@ use crate::precond::{LaplaceInfo, LaplaceMethod};
 use crate::problem::EvalCounts;
 
 /// The caution every output carries.
-pub const CAUTION: &str = "The spread reported here is conditional on the model, the background-error \
-covariance B and the observation-error covariance R as given: errors in any of them are not represented.";
+pub const CAUTION: &str = crate::diagnostics::CONDITIONAL_CAUTION;
 
 /// The minimisation, as reported.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
@@ -166,6 +165,9 @@ pub struct Summary {
     pub problem: String,
     pub description: String,
     pub dim: usize,
+    /// Names of the control-vector components.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub component_names: Option<Vec<String>>,
     pub settings: serde_json::Value,
     pub caution: String,
     #[serde(skip_serializing_if = "Option::is_none")]

@@ -17,8 +17,10 @@ use crate::problem::replay::Replay;
 use crate::problem::settings::Settings;
 use crate::problem::{Counted, Problem};
 
+pub mod report;
 pub mod sample;
 
+pub use report::{run_report, ReportOutcome};
 pub use sample::{read_run, run_sample, Metric, SampleOutcome, SampleRunConfig};
 
 /// Where the problem comes from.
@@ -61,6 +63,7 @@ impl Loaded {
             self.settings.clone(),
         );
         s.reference = self.reference.clone();
+        s.component_names = Some(self.names());
         if let Some(p) = self.problem.prior() {
             s.background = Some(p.mean().to_vec());
             s.background_variance = Some(p.variance());
@@ -343,50 +346,85 @@ pub(crate) fn laplace_summary(
 /// What the demo found, for printing.
 pub struct DemoReport {
     pub check: GradientReport,
-    pub map: MapResult,
-    pub summary: Summary,
+    pub sample: SampleOutcome,
+    pub report: ReportOutcome,
     /// Root-mean-square error against the truth of the background and of the analysis.
     pub rmse_background: Option<f64>,
     pub rmse_analysis: Option<f64>,
 }
 
-/// The demo: the embedded Lorenz-96 scenario through every stage.
-pub fn run_demo(out: &Path) -> Result<DemoReport> {
-    let scenario = builtin::demo_scenario()?;
-    let truth = scenario.truth.as_ref().map(|t| t[0].clone());
-    let description = crate::problem::lorenz96::describe(&scenario.config);
-    let settings = serde_json::to_value(&scenario.config).unwrap_or_default();
-    let loaded = Loaded {
-        problem: Counted::new(Replay::new(Box::new(
-            crate::problem::lorenz96::Lorenz96::new(scenario)?,
-        ))),
+/// The demo: the embedded Lorenz-96 scenario through every stage, into `out`. A folder left by an
+/// earlier demo is replaced; any other non-empty folder is refused.
+pub fn run_demo(out: &Path, progress: &dyn crate::sampler::Progress) -> Result<DemoReport> {
+    if out.exists()
+        && std::fs::read_dir(out)
+            .map(|mut d| d.next().is_some())
+            .unwrap_or(false)
+    {
+        match Summary::read(out) {
+            Ok(s) if s.command == "demo" || s.command == "sample" && s.problem == "lorenz96" && out.join("demo.txt").exists() => {
+                std::fs::remove_dir_all(out).map_err(|e| Error::io(out, e))?;
+            }
+            _ => {
+                return Err(Error::Config(format!(
+                    "{} is not empty and does not hold an earlier demo; give the demo another folder with --out",
+                    out.display()
+                )))
+            }
+        }
+    }
+    std::fs::create_dir_all(out).map_err(|e| Error::io(out, e))?;
+    std::fs::write(
+        out.join("demo.txt"),
+        "written by `varpost demo`; the folder is replaced when the demo runs again\n",
+    )
+    .map_err(|e| Error::io(out.join("demo.txt"), e))?;
+    let source = ProblemSource::Builtin {
         name: "lorenz96".into(),
-        description,
-        settings,
-        reference: None,
-        truth,
+        settings: Vec::new(),
     };
+    let loaded = load(&source)?;
     let x0 = loaded.default_start()?;
     let check = gradient_test(&loaded.problem, &x0, 1)?;
     if !check.passed {
         return Err(Error::GradientCheck(check.verdict));
     }
-    let mut summary = loaded.summary("demo");
-    summary.check = Some(check_summary(&check));
-    let map = analysis(&loaded, &MapRunConfig::default(), &mut summary)?;
-    write_analysis(&loaded, &map, out)?;
-    summary.evaluations = loaded.problem.counts();
-    summary.write(out)?;
+    let cfg = SampleRunConfig {
+        source,
+        start: None,
+        lbfgs: MapConfig::default(),
+        laplace: LaplaceOptions::default(),
+        metric: Metric::Laplace,
+        sampler: crate::sampler::SampleConfig {
+            kernel: crate::sampler::KernelKind::Hmc,
+            ..Default::default()
+        },
+        laplace_draws: 200,
+        check_seed: 1,
+        skip_check: true,
+    };
+    let interrupt = crate::interrupt::Interrupt::from_signals()?;
+    let mut sample = run_sample(&loaded, &cfg, out, false, &interrupt, progress)?;
+    sample.summary.command = "demo".into();
+    sample.summary.check = Some(check_summary(&check));
+    sample.summary.write(out)?;
+    let report = run_report(out, "varpost demo")?;
     let rmse = |a: &[f64]| {
         loaded.truth.as_ref().map(|t| {
             (t.iter().zip(a).map(|(p, q)| (p - q).powi(2)).sum::<f64>() / t.len() as f64).sqrt()
         })
     };
+    let xa = sample
+        .summary
+        .map
+        .as_ref()
+        .map(|m| m.x.clone())
+        .unwrap_or_default();
     Ok(DemoReport {
         rmse_background: rmse(&x0),
-        rmse_analysis: rmse(&map.x),
+        rmse_analysis: rmse(&xa),
         check,
-        map,
-        summary,
+        sample,
+        report,
     })
 }

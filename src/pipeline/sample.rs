@@ -198,6 +198,9 @@ pub fn run_sample(
     stage(&mut summary, "laplace_check");
     let pre_sampling = problem.counts();
     problem.inner().detach()?;
+    // What is known before the chains run, so that `report` can work on a partial run.
+    summary.evaluations = pre_sampling;
+    summary.write(out)?;
 
     // 5. The chains.
     let target = Target::new(problem, &loaded.name, map.x.clone(), metric.clone())?;

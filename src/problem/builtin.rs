@@ -54,6 +54,8 @@ pub fn open(name: &str, settings: &Settings) -> Result<Builtin> {
                     }
                     s
                 }
+                // No settings at all: the embedded demo (what the defaults generate, byte for byte).
+                None if settings.is_empty() => demo_scenario()?,
                 None => Scenario::synthesize(&Lorenz96Config::from_settings(settings)?)?,
             };
             settings.finish(name)?;
