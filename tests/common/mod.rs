@@ -29,7 +29,14 @@ pub fn temp_dir(name: &str) -> PathBuf {
 
 /// The Python interpreter with the reference packages (set by scripts/test.sh).
 pub fn python() -> String {
-    std::env::var("VARPOST_PYTHON").unwrap_or_else(|_| "python3".into())
+    if let Ok(p) = std::env::var("VARPOST_PYTHON") {
+        return p;
+    }
+    let venv = root().join("target/test-venv/bin/python");
+    if venv.exists() {
+        return venv.to_string_lossy().into_owned();
+    }
+    "python3".into()
 }
 
 /// The project folder.
