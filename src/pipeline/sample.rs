@@ -25,7 +25,7 @@ use crate::output::summary::{
 use crate::output::{write_atomic, Summary};
 use crate::precond::{laplace, IdentityPrecond, LaplaceMethod, LaplaceOptions, Preconditioner};
 use crate::problem::check::taylor_test;
-use crate::problem::{EvalCounts, Problem};
+use crate::problem::Problem;
 use crate::sampler::checkpoint::checkpoint_path;
 use crate::sampler::{self, Checkpoint, DrawsFile, Progress, SampleConfig, SampleResult, Target};
 
@@ -216,10 +216,9 @@ pub fn run_sample(
     summary
         .evaluations_by_stage
         .insert("sampling".into(), result.counts_sampling);
-    summary.evaluations = add(
-        &add(&pre_sampling, &result.counts_warmup),
-        &result.counts_sampling,
-    );
+    summary.evaluations = pre_sampling
+        .plus(&result.counts_warmup)
+        .plus(&result.counts_sampling);
 
     // 6. Diagnostics.
     let (stats, ebfmi) = diagnose(out, cfg.sampler.chains, n)?;
@@ -294,15 +293,6 @@ pub fn run_sample(
         stats,
         verdict,
     })
-}
-
-fn add(a: &EvalCounts, b: &EvalCounts) -> EvalCounts {
-    EvalCounts {
-        cost: a.cost + b.cost,
-        gradient: a.gradient + b.gradient,
-        hessvec: a.hessvec + b.hessvec,
-        failed: a.failed + b.failed,
-    }
 }
 
 /// Largest value, NaN winning (a diagnostic that could not be computed is the worst case).

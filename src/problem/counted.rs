@@ -24,6 +24,15 @@ impl EvalCounts {
     pub fn model_runs(&self) -> u64 {
         self.cost + self.gradient + self.hessvec
     }
+    /// The sum of two counts (of two stages or two segments of a run).
+    pub fn plus(&self, other: &EvalCounts) -> EvalCounts {
+        EvalCounts {
+            cost: self.cost + other.cost,
+            gradient: self.gradient + other.gradient,
+            hessvec: self.hessvec + other.hessvec,
+            failed: self.failed + other.failed,
+        }
+    }
     /// The difference `self − earlier`, for splitting counts by stage.
     pub fn since(&self, earlier: &EvalCounts) -> EvalCounts {
         EvalCounts {

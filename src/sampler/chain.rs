@@ -158,15 +158,6 @@ struct Ctx<'t, 'a> {
     progress: &'t dyn Progress,
 }
 
-fn add_counts(a: &EvalCounts, b: &EvalCounts) -> EvalCounts {
-    EvalCounts {
-        cost: a.cost + b.cost,
-        gradient: a.gradient + b.gradient,
-        hessvec: a.hessvec + b.hessvec,
-        failed: a.failed + b.failed,
-    }
-}
-
 impl Runner {
     fn start(index: usize, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<Runner> {
         let (target, kernel, config) = (ctx.target, ctx.kernel, ctx.config);
@@ -448,9 +439,9 @@ pub fn run(
             .collect();
         let spent = target.counts().since(&before);
         if until <= config.warmup {
-            counts_warmup = add_counts(&counts_warmup, &spent);
+            counts_warmup = counts_warmup.plus(&spent);
         } else {
-            counts_sampling = add_counts(&counts_sampling, &spent);
+            counts_sampling = counts_sampling.plus(&spent);
         }
         save(&mut runners, &counts_warmup, &counts_sampling, false)?;
         if let Some((c, Err(e))) = outcomes.into_iter().enumerate().find(|(_, o)| o.is_err()) {
