@@ -439,13 +439,16 @@ pub fn run(cli: Cli) -> Result<i32> {
                 map: lbfgs.config()?,
                 laplace: hessian.options()?,
             };
-            let loaded = pipeline::load(&problem.source()?)?;
+            let source = problem.source()?;
+            let loaded = pipeline::load(&source)?;
             println!(
                 "Hessian at the analysis: {} (n = {})",
                 loaded.description,
                 loaded.problem.dim()
             );
-            let (m, s) = pipeline::run_hessian(&loaded, &cfg, &problem.out)?;
+            let (m, s) = in_worker_pool(&source, 1, || {
+                pipeline::run_hessian(&loaded, &cfg, &problem.out)
+            })?;
             print_map(&m);
             if let Some(l) = &s.laplace {
                 print_laplace(l);
@@ -552,6 +555,31 @@ pub fn run(cli: Cli) -> Result<i32> {
     }
 }
 
+/// Runs `f` with one thread per adapter worker (at least `min_threads`) where the problem is an adapter
+/// with several workers: its evaluations wait on I/O, so K chains or K Hessian-vector products then run
+/// on K workers at once. Results do not depend on the number of threads.
+fn in_worker_pool<T: Send>(
+    source: &ProblemSource,
+    min_threads: usize,
+    f: impl FnOnce() -> Result<T> + Send,
+) -> Result<T> {
+    match source {
+        ProblemSource::Adapter(a) if a.workers > 1 => {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(a.workers.max(min_threads))
+                .build()
+                .map_err(|e| {
+                    Error::Config(format!(
+                        "cannot start threads for {} adapter workers: {e}",
+                        a.workers
+                    ))
+                })?;
+            pool.install(f)
+        }
+        _ => f(),
+    }
+}
+
 fn command_line() -> String {
     std::env::args().collect::<Vec<_>>().join(" ")
 }
@@ -580,7 +608,9 @@ fn sample(
                 std::thread::sleep(std::time::Duration::from_millis(100));
             }
         });
-        let r = pipeline::run_sample(loaded, cfg, out, resume, &interrupt, &progress);
+        let r = in_worker_pool(&cfg.source, cfg.sampler.chains, || {
+            pipeline::run_sample(loaded, cfg, out, resume, &interrupt, &progress)
+        });
         done.store(true, Ordering::Relaxed);
         r
     });
