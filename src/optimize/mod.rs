@@ -300,9 +300,14 @@ pub fn find_map(problem: &dyn Problem, x0: &[f64], config: &MapConfig) -> Result
             .configure(|s| s.param(p_start).max_iters(remaining))
             .add_observer(recorder, ObserverMode::Always)
             .run();
+        // The best accepted point: the lowest cost, except that among points whose costs agree to
+        // round-off (near the minimum the cost no longer tells them apart) the smallest gradient wins.
         if let Ok(acc) = accepted.lock() {
             for pt in acc.1.iter() {
-                if pt.cost < best.cost {
+                let noise = 1e-13 * best.cost.abs().max(pt.cost.abs());
+                let better = pt.cost < best.cost - noise
+                    || ((pt.cost - best.cost).abs() <= noise && norm(&pt.grad) < norm(&best.grad));
+                if better {
                     best = pt.clone();
                 }
             }
