@@ -41,4 +41,13 @@ for script in tests/reference/*.py; do
 done
 
 echo "== cargo test"
-cargo test --all-targets "$@"
+log="$tmp/cargo-test.log"
+set +e
+cargo test --all-targets "$@" 2>&1 | tee "$log"
+status=${PIPESTATUS[0]}
+set -e
+# One closing line over every test binary (the last binary cargo runs may hold no tests).
+passed=$(grep -E '^test result:' "$log" | sed -E 's/.* ([0-9]+) passed.*/\1/' | awk '{s+=$1} END {print s+0}')
+failed=$(grep -E '^test result:' "$log" | sed -E 's/.* ([0-9]+) failed.*/\1/' | awk '{s+=$1} END {print s+0}')
+echo "tests: $passed passed, $failed failed"
+exit "$status"
