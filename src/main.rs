@@ -16,6 +16,7 @@ fn main() {
             std::process::exit(match e {
                 varpost::Error::Config(_) => 2,
                 varpost::Error::GradientCheck(_) => 3,
+                varpost::Error::Interrupted(_) => 130,
                 _ => 1,
             });
         }

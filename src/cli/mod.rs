@@ -616,7 +616,13 @@ fn sample(
     });
     evals.finish();
     iters.finish();
-    let o = o?;
+    let o = o.map_err(|e| match e {
+        Error::Interrupted(m) => Error::Interrupted(format!(
+            "{m}; continue with `varpost resume {}`",
+            out.display()
+        )),
+        other => other,
+    })?;
     print_sample(&o);
     let r = pipeline::run_report(out, &command_line())?;
     println!("report: {}", r.html.display());
