@@ -10,15 +10,37 @@ use crate::problem::EvalCounts;
 /// The caution every output carries.
 pub const CAUTION: &str = crate::diagnostics::CONDITIONAL_CAUTION;
 
+/// JSON has no NaN or infinity: serde_json writes them as `null`. These read `null` back as NaN, so
+/// that a summary with a diagnostic that could not be computed (a constant component's R-hat, say)
+/// still reads back.
+mod nullable {
+    use serde::{Deserialize, Deserializer};
+
+    pub fn f64<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+        Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::NAN))
+    }
+
+    pub fn vec<'de, D: Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
+        Ok(Vec::<Option<f64>>::deserialize(d)?
+            .into_iter()
+            .map(|v| v.unwrap_or(f64::NAN))
+            .collect())
+    }
+}
+
 /// The minimisation, as reported.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct MapSummary {
+    #[serde(deserialize_with = "nullable::f64")]
     pub cost: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub cost_start: f64,
     /// Jb and Jo at the analysis, where the problem reports them.
     pub cost_background: Option<f64>,
     pub cost_observation: Option<f64>,
+    #[serde(deserialize_with = "nullable::f64")]
     pub grad_norm: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub grad_norm_start: f64,
     pub iterations: u64,
     pub converged: bool,
@@ -26,6 +48,7 @@ pub struct MapSummary {
     /// Whether the minimisation ran in the prior-whitened control variable.
     pub whitened: bool,
     /// The analysis.
+    #[serde(deserialize_with = "nullable::vec")]
     pub x: Vec<f64>,
 }
 
@@ -34,6 +57,7 @@ pub struct MapSummary {
 pub struct CheckSummary {
     pub passed: bool,
     pub verdict: String,
+    #[serde(deserialize_with = "nullable::f64")]
     pub best_ratio_error: f64,
     pub remainder_slope: Option<f64>,
     pub fd_max_rel_error: Option<f64>,
@@ -47,10 +71,13 @@ pub struct LaplaceSummary {
     /// Rank of the low-rank update of the prior (low-rank method only).
     pub rank: Option<usize>,
     /// diag of the Laplace covariance: the analysis-error variances.
+    #[serde(deserialize_with = "nullable::vec")]
     pub variance: Vec<f64>,
     /// log det of the Laplace covariance.
+    #[serde(deserialize_with = "nullable::f64")]
     pub log_det_cov: f64,
     /// Leading eigenvalues, descending, of `spectrum_of`.
+    #[serde(deserialize_with = "nullable::vec")]
     pub eigenvalues: Vec<f64>,
     /// File (in the output folder) holding the matching eigen-directions in model space, one per column.
     pub eigenvectors_file: Option<String>,
@@ -62,7 +89,9 @@ pub struct LaplaceSummary {
 /// The closed-form posterior, where the problem has one.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ReferenceSummary {
+    #[serde(deserialize_with = "nullable::vec")]
     pub mean: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub variance: Vec<f64>,
 }
 
@@ -71,20 +100,31 @@ pub struct ReferenceSummary {
 pub struct PosteriorSummary {
     /// Kept draws over all chains.
     pub draws: u64,
+    #[serde(deserialize_with = "nullable::vec")]
     pub mean: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub variance: Vec<f64>,
     /// Monte Carlo standard error of the mean.
+    #[serde(deserialize_with = "nullable::vec")]
     pub mcse_mean: Vec<f64>,
     /// Monte Carlo standard error of the standard deviation.
+    #[serde(deserialize_with = "nullable::vec")]
     pub mcse_sd: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub ess_bulk: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub ess_tail: Vec<f64>,
     /// Rank-normalised split R-hat.
+    #[serde(deserialize_with = "nullable::vec")]
     pub rhat: Vec<f64>,
     /// 5% and 95% quantiles and their Monte Carlo standard errors.
+    #[serde(deserialize_with = "nullable::vec")]
     pub q05: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub q95: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub mcse_q05: Vec<f64>,
+    #[serde(deserialize_with = "nullable::vec")]
     pub mcse_q95: Vec<f64>,
 }
 
@@ -93,7 +133,9 @@ pub struct PosteriorSummary {
 pub struct ChainReport {
     pub chain: usize,
     /// Mean acceptance probability while sampling, and during the warm-up.
+    #[serde(deserialize_with = "nullable::f64")]
     pub acceptance: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub warmup_acceptance: f64,
     /// The adapted step size (whitened units), for kernels that have one.
     pub step_size: Option<f64>,
@@ -109,8 +151,11 @@ pub struct ChainReport {
 /// The convergence diagnostics and the plain-language verdict.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct DiagnosticsSummary {
+    #[serde(deserialize_with = "nullable::f64")]
     pub rhat_max: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub ess_bulk_min: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub ess_tail_min: f64,
     /// Pareto k-hat of the Laplace importance weights, where the check ran.
     pub khat: Option<f64>,
@@ -129,13 +174,18 @@ pub struct LaplaceCheckSummary {
     pub draws: usize,
     /// Draws whose cost could not be evaluated (weight 0).
     pub failed: usize,
+    #[serde(deserialize_with = "nullable::f64")]
     pub khat: f64,
     /// k-hat below this is reliable: min(1 − 1/log10(S), 0.7).
+    #[serde(deserialize_with = "nullable::f64")]
     pub khat_threshold: f64,
     /// Kish effective sample size of the weights, and as a fraction of the draws.
+    #[serde(deserialize_with = "nullable::f64")]
     pub kish_ess: f64,
+    #[serde(deserialize_with = "nullable::f64")]
     pub kish_fraction: f64,
     /// Per component: posterior (sampled) variance / Laplace variance.
+    #[serde(deserialize_with = "nullable::vec")]
     pub variance_ratio: Vec<f64>,
 }
 
@@ -234,5 +284,32 @@ impl Summary {
         let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
         serde_json::from_str(&text)
             .map_err(|e| Error::format(&p, format!("not a varpost summary: {e}")))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_summary_with_non_finite_diagnostics_reads_back() {
+        // JSON (RFC 8259) has no NaN or infinity; serde_json writes null, which must read back as NaN.
+        let dir = std::env::temp_dir().join(format!("varpost-summary-nan-{}", std::process::id()));
+        let mut s = Summary::new("sample", "p", "d", 2, serde_json::Value::Null);
+        s.diagnostics = Some(DiagnosticsSummary {
+            rhat_max: f64::NAN,
+            ess_bulk_min: 10.0,
+            ess_tail_min: f64::INFINITY,
+            khat: Some(f64::NEG_INFINITY),
+            converged: false,
+            laplace_adequate: None,
+            verdict: String::new(),
+        });
+        s.write(&dir).unwrap();
+        let r = Summary::read(&dir).unwrap();
+        let d = r.diagnostics.unwrap();
+        assert!(d.rhat_max.is_nan() && d.ess_tail_min.is_nan() && d.ess_bulk_min == 10.0);
+        assert_eq!(d.khat, None);
+        let _ = std::fs::remove_dir_all(&dir);
     }
 }
