@@ -13,6 +13,29 @@ use super::protocol::{Capabilities, Encoding, Hello, Op, ProtocolError, Reply, R
 use crate::error::{Error, EvalError, Result};
 use crate::problem::{check_finite, CostSplit, Prior, Problem};
 
+/// Starts worker `index`; a worker that dies before its hello line is started again, up to
+/// `retries` times, after a short pause that grows with the attempt (launchers such as mpirun can
+/// fail transiently when several start at once). Protocol and handshake errors are not retried.
+fn start_with_retries(
+    spec: &WorkerSpec,
+    index: usize,
+    retries: u32,
+) -> std::result::Result<Worker, WorkerError> {
+    let mut attempt = 0;
+    loop {
+        match Worker::start(spec, index, attempt) {
+            Err(WorkerError::Died(_)) if attempt < retries => {
+                attempt += 1;
+                thread::sleep(std::time::Duration::from_millis(
+                    50 * u64::from(attempt) * (index as u64 + 1),
+                ));
+                let _ = m;
+            }
+            r => return r,
+        }
+    }
+}
+
 /// How to run an adapter. [`AdapterConfig::new`] gives the defaults.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct AdapterConfig {
@@ -285,7 +308,7 @@ impl AdapterProblem {
                 .map(|i| {
                     s.spawn({
                         let spec = &spec;
-                        move || Worker::start(spec, i, 0)
+                        move || start_with_retries(spec, i, config.max_restarts)
                     })
                 })
                 .collect();

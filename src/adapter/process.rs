@@ -741,8 +741,10 @@ impl Worker {
                 line
             }
             ReadOutcome::Eof => {
+                // Gone before saying hello: a crash at start-up, which a new start may not repeat
+                // (e.g. a launcher that lost a race for its session directory).
                 let status = self.reap_after_eof();
-                return Err(WorkerError::Start(self.describe(&format!(
+                return Err(WorkerError::Died(self.describe(&format!(
                     "{} before its hello line",
                     describe_status(status)
                 ))));
