@@ -42,3 +42,7 @@ done
 
 echo "== cargo test"
 cargo test --all-targets "$@"
+
+# The benchmark harness in its quick mode, so that it keeps building and running (figures not judged).
+echo "== benchmark harness (quick)"
+cargo run -p varpost-bench -- --quick
