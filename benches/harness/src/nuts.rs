@@ -6,7 +6,7 @@ use std::collections::HashMap;
 use nuts_rs::rand::SeedableRng;
 use nuts_rs::{
     Chain, CpuLogpFunc, CpuMath, CpuMathError, DiagNutsSettings, HasDims, LogpError,
-    LowRankNutsSettings, Settings,
+    LowRankNutsSettings, NutsSettings, Settings,
 };
 use rayon::prelude::*;
 use varpost::{EvalError, Problem};
@@ -92,22 +92,17 @@ pub fn sample(
 ) -> Result<NutsDraws, String> {
     let per_chain: Vec<Result<(Vec<Vec<f64>>, u64), String>> = (0..chains)
         .into_par_iter()
-        .map(|c| match adaptation {
-            Adaptation::Diagonal => {
-                let mut s = DiagNutsSettings::default();
-                s.num_tune = tune;
-                s.num_draws = draws;
-                s.num_chains = chains;
-                s.seed = seed;
-                one_chain(&s, problem, start, c as u64, seed)
-            }
-            Adaptation::LowRank => {
-                let mut s = LowRankNutsSettings::default();
-                s.num_tune = tune;
-                s.num_draws = draws;
-                s.num_chains = chains;
-                s.seed = seed;
-                one_chain(&s, problem, start, c as u64, seed)
+        .map(|c| {
+            let c = c as u64;
+            match adaptation {
+                Adaptation::Diagonal => {
+                    let s = sized(DiagNutsSettings::default(), chains, tune, draws, seed);
+                    one_chain(&s, problem, start, c, seed)
+                }
+                Adaptation::LowRank => {
+                    let s = sized(LowRankNutsSettings::default(), chains, tune, draws, seed);
+                    one_chain(&s, problem, start, c, seed)
+                }
             }
         })
         .collect();
@@ -121,6 +116,21 @@ pub fn sample(
         out.divergences += div;
     }
     Ok(out)
+}
+
+/// nuts-rs's default settings of one adaptation, with the run's lengths and seed.
+fn sized<A: std::fmt::Debug + Copy + Default + serde::Serialize>(
+    mut s: NutsSettings<A>,
+    chains: usize,
+    tune: u64,
+    draws: u64,
+    seed: u64,
+) -> NutsSettings<A> {
+    s.num_tune = tune;
+    s.num_draws = draws;
+    s.num_chains = chains;
+    s.seed = seed;
+    s
 }
 
 fn one_chain<S: Settings>(

@@ -89,8 +89,8 @@ pub fn markdown(
         Ok(sc) => {
             let _ = writeln!(
                 s,
-                "Parallel chains: 2 MALA chains × {} iterations on the linear-Gaussian problem (n = {}): \
-                 {:.2} s on a 1-thread pool, {:.2} s on a 2-thread pool, speed-up {:.2}× (1-minute load \
+                "Parallel chains: 2 MALA chains × {} iterations on the linear-Gaussian problem (n = {}), \
+                 best of 3: {:.2} s on a 1-thread pool, {:.2} s on a 2-thread pool, speed-up {:.2}× (1-minute load \
                  average before timing: {:.2}).\n",
                 sc.iterations_per_chain,
                 sc.dim,
