@@ -46,8 +46,21 @@ set +e
 cargo test --all-targets "$@" 2>&1 | tee "$log"
 status=${PIPESTATUS[0]}
 set -e
+
+# The benchmark harness in its quick mode, so that it keeps building and running (figures not judged).
+echo "== benchmark harness (quick)"
+set +e
+cargo run -p varpost-bench -- --quick
+bench_status=$?
+set -e
+
 # One closing line over every test binary (the last binary cargo runs may hold no tests).
 passed=$(grep -E '^test result:' "$log" | sed -E 's/.* ([0-9]+) passed.*/\1/' | awk '{s+=$1} END {print s+0}')
 failed=$(grep -E '^test result:' "$log" | sed -E 's/.* ([0-9]+) failed.*/\1/' | awk '{s+=$1} END {print s+0}')
+if [ "$bench_status" -ne 0 ]; then
+  echo "the benchmark harness (quick mode) failed with status $bench_status"
+  failed=$((failed + 1))
+  [ "$status" -ne 0 ] || status=$bench_status
+fi
 echo "tests: $passed passed, $failed failed"
 exit "$status"

@@ -29,7 +29,6 @@ fn start_with_retries(
                 thread::sleep(std::time::Duration::from_millis(
                     50 * u64::from(attempt) * (index as u64 + 1),
                 ));
-                let _ = m;
             }
             r => return r,
         }
