@@ -43,7 +43,7 @@ done
 echo "== cargo test"
 log="$tmp/cargo-test.log"
 set +e
-cargo test --all-targets "$@" 2>&1 | tee "$log"
+cargo test "$@" 2>&1 | tee "$log"
 status=${PIPESTATUS[0]}
 set -e
 

@@ -122,6 +122,19 @@ impl<P: Problem + ?Sized> Problem for Counted<P> {
             .and_then(|c| check_finite(c, None).map(|_| c));
         self.tally(r)
     }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<Result<f64, EvalError>> {
+        let n = self.inner.dim();
+        if let Some(bad) = xs.iter().find(|x| x.len() != n) {
+            let e = check_len("control vector", bad, n).unwrap_err();
+            return xs.iter().map(|_| Err(e.clone())).collect();
+        }
+        self.cost.fetch_add(xs.len() as u64, Ordering::Relaxed);
+        self.inner
+            .cost_batch(xs)
+            .into_iter()
+            .map(|r| self.tally(r.and_then(|c| check_finite(c, None).map(|_| c))))
+            .collect()
+    }
     fn has_hess_vec(&self) -> bool {
         self.inner.has_hess_vec()
     }

@@ -57,6 +57,14 @@ pub trait Problem: Send + Sync {
         self.cost_grad(x, &mut g)
     }
 
+    /// The costs at several points (forward runs only), in the order given. Callers that have many
+    /// independent points at once (importance draws, particles, multi-start) use this so that the
+    /// evaluations can run side by side: the subprocess adapter spreads them over its workers and the
+    /// built-in problems over threads. The default evaluates one after the other.
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<Result<f64, EvalError>> {
+        xs.iter().map(|x| self.cost(x)).collect()
+    }
+
     /// Whether [`Problem::hess_vec`] is offered (a second-order adjoint, or exact for a linear problem).
     fn has_hess_vec(&self) -> bool {
         false
@@ -93,6 +101,9 @@ impl<P: Problem + ?Sized> Problem for Box<P> {
     }
     fn cost(&self, x: &[f64]) -> Result<f64, EvalError> {
         (**self).cost(x)
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<Result<f64, EvalError>> {
+        (**self).cost_batch(xs)
     }
     fn has_hess_vec(&self) -> bool {
         (**self).has_hess_vec()

@@ -290,6 +290,20 @@ impl<P: Problem> Problem for Replay<P> {
         self.record(Kind::Cost, x, None, c, &[])?;
         Ok(c)
     }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        let mut out: Vec<Option<std::result::Result<f64, EvalError>>> = xs
+            .iter()
+            .map(|x| self.lookup(&key(Kind::Cost, x, None)).map(|(c, _)| Ok(c)))
+            .collect();
+        let missing: Vec<usize> = (0..xs.len()).filter(|&i| out[i].is_none()).collect();
+        let todo: Vec<&[f64]> = missing.iter().map(|&i| xs[i]).collect();
+        let fresh = self.inner.cost_batch(&todo);
+        for (&i, r) in missing.iter().zip(fresh) {
+            let r = r.and_then(|c| self.record(Kind::Cost, xs[i], None, c, &[]).map(|_| c));
+            out[i] = Some(r);
+        }
+        out.into_iter().map(|r| r.expect("every point evaluated")).collect()
+    }
     fn has_hess_vec(&self) -> bool {
         self.inner.has_hess_vec()
     }

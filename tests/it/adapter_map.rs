@@ -1,7 +1,7 @@
 //! The analysis through the Python adapter equals the built-in problem's (the adapter mirrors the
 //! built-in lorenz96 on the demo data), also when the adapter runs under Open MPI's mpirun.
 
-mod common;
+use crate::common;
 
 use common::{read_json, temp_dir, vecf};
 

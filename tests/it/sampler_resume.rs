@@ -2,7 +2,7 @@
 //! a fatal evaluation error or a real SIGKILL and then resumed gives output bit-identical to the
 //! uninterrupted run; foreign or corrupt checkpoints are refused with a clear error.
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -332,7 +332,7 @@ fn kill_child() {
 fn sigkill_at_any_moment_then_resume_is_bit_identical() {
     let (ref_dir, _) = reference_run("kill-ref", &kill_cfg());
     let dir = temp_dir("kill");
-    let spawn = || spawn_child("kill_child", &dir);
+    let spawn = || spawn_child("sampler_resume::kill_child", &dir);
     let mut killed = 0;
     for delay_ms in [200u64, 550, 900] {
         let mut child = spawn();
@@ -388,7 +388,7 @@ fn signal_child() {
 fn sigint_saves_state_and_resume_is_bit_identical() {
     let (ref_dir, _) = reference_run("sigint-ref", &kill_cfg());
     let dir = temp_dir("sigint");
-    let mut child = spawn_child("signal_child", &dir);
+    let mut child = spawn_child("sampler_resume::signal_child", &dir);
     std::thread::sleep(Duration::from_millis(400));
     assert!(
         child.try_wait().unwrap().is_none(),

@@ -1,7 +1,7 @@
 //! `varpost hessian` as a user meets it: the Laplace covariance at the analysis written to summary.json,
 //! variance.csv and eigenvectors.csv, and bad options refused with a clear message.
 
-mod common;
+use crate::common;
 
 use common::{read_json, run, temp_dir};
 

@@ -2,7 +2,7 @@
 //! scipy.io.netcdf_file, components.csv by Python's csv module, the PNG pictures by the `image` crate,
 //! and the links of report.html resolved against the folder.
 
-mod common;
+use crate::common;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

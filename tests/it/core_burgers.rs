@@ -1,7 +1,7 @@
 //! Viscous Burgers model, its tangent-linear and adjoint, the circulant background covariance and the
 //! Burgers 4D-Var cost: checks against facts from outside the project (each check names its source).
 
-mod common;
+use crate::common;
 
 use std::f64::consts::PI;
 

@@ -1,6 +1,6 @@
 //! The binary as a user meets it: the demo, check, map, and bad input giving clear errors.
 
-mod common;
+use crate::common;
 
 use common::{read_json, run, temp_dir};
 

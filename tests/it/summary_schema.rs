@@ -1,7 +1,7 @@
 //! The schema of summary.json (every key path and the JSON type at it) as a snapshot, so that a change
 //! to the documented format is seen in review. Values are not part of the snapshot.
 
-mod common;
+use crate::common;
 
 fn paths(v: &serde_json::Value, prefix: &str, out: &mut Vec<String>) {
     match v {

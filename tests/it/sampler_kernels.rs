@@ -1,7 +1,7 @@
 //! Each kernel leaves its target invariant: Gaussian targets with closed-form moments, a truncated
 //! Gaussian (recoverable evaluation failures), and the banana of Haario, Saksman & Tamminen 1999.
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::sync::Arc;

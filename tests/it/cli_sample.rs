@@ -2,7 +2,7 @@
 //! closed form, acceptance near the published optima, kill -9 then resume reproducing the run bit for
 //! bit, the NetCDF ensemble read back by Python, and bad input.
 
-mod common;
+use crate::common;
 
 use std::path::Path;
 use std::process::Stdio;
@@ -150,7 +150,7 @@ fn spawn_sample(out: &Path) -> std::process::Child {
 
 #[test]
 fn kill_9_then_resume_reproduces_the_uninterrupted_run_bit_for_bit() {
-    let d = temp_dir("kill");
+    let d = temp_dir("cli-kill");
     let full = d.join("full");
     let st = spawn_sample(&full).wait().unwrap();
     assert!(st.code() == Some(0) || st.code() == Some(5));

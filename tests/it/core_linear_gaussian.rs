@@ -1,7 +1,7 @@
 //! The linear-Gaussian problem: closed form against numpy/scipy, MAP against the closed form, and the
 //! optimiser on the Rosenbrock function.
 
-mod common;
+use crate::common;
 
 use varpost::optimize::{find_map, MapConfig};
 use varpost::problem::linear_gaussian::{LinearGaussian, LinearGaussianConfig};

@@ -1,7 +1,7 @@
 //! Lorenz-96 model, tangent-linear, adjoint and 4D-Var cost: checks against facts from outside the
 //! project (each check names its source).
 
-mod common;
+use crate::common;
 
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
