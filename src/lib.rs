@@ -16,6 +16,7 @@ pub mod output;
 pub mod pipeline;
 pub mod precond;
 pub mod problem;
+pub mod resources;
 pub mod sampler;
 
 pub use error::{Error, EvalError, Result};
