@@ -70,11 +70,12 @@ impl std::error::Error for EvalError {}
 /// Everything a varpost run can fail with.
 #[derive(Debug)]
 pub enum Error {
-    /// An evaluation failed where the run could not carry on; `context` says what was being done.
+    /// An evaluation failed where the run could not carry on; `context` says what was being done and
+    /// the evaluation error is the cause ([`std::error::Error::source`]).
     Eval { context: String, source: EvalError },
     /// A bad option, setting or combination of them; the message says how to fix it.
     Config(String),
-    /// A file could not be read or written.
+    /// A file could not be read or written; the I/O error is the cause.
     Io {
         path: PathBuf,
         source: std::io::Error,
@@ -83,12 +84,53 @@ pub enum Error {
     Format { path: PathBuf, message: String },
     /// A numerical failure (e.g. a matrix that should be positive definite is not).
     Numerical(String),
+    /// Too little data for a computation (e.g. diagnostics of chains holding fewer than 4 draws).
+    Data(String),
+    /// The operating system refused something the run needs (threads, signal handlers, a lock).
+    System(String),
     /// The subprocess adapter failed in a way the run cannot survive.
     Adapter(String),
     /// The gradient test found the gradient wrong.
     GradientCheck(String),
     /// The run was interrupted (SIGINT/SIGTERM) after saving its state.
     Interrupted(String),
+    /// A defect of varpost itself (a panic caught at the top); the message says where.
+    Internal(String),
+}
+
+/// The process exit codes, decided here and nowhere else (README, "Exit codes").
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ExitCode {
+    /// Done.
+    Success,
+    /// A failure; the message names what and how to fix it.
+    Failure,
+    /// A bad option, setting or file.
+    BadInput,
+    /// The gradient test failed.
+    GradientWrong,
+    /// The minimisation did not converge.
+    AnalysisNotConverged,
+    /// The ensemble is not to be used as it is: the chains have not converged, or the verdict names
+    /// another reason (a failed check, too many divergences, a partial run).
+    EnsembleNotUsable,
+    /// Interrupted by SIGINT/SIGTERM after saving the state.
+    Interrupted,
+}
+
+impl ExitCode {
+    /// The number the process exits with.
+    pub fn code(self) -> i32 {
+        match self {
+            ExitCode::Success => 0,
+            ExitCode::Failure => 1,
+            ExitCode::BadInput => 2,
+            ExitCode::GradientWrong => 3,
+            ExitCode::AnalysisNotConverged => 4,
+            ExitCode::EnsembleNotUsable => 5,
+            ExitCode::Interrupted => 130,
+        }
+    }
 }
 
 impl Error {
@@ -113,25 +155,58 @@ impl Error {
             message: message.into(),
         }
     }
+    /// The exit code this error ends the process with.
+    pub fn exit_code(&self) -> ExitCode {
+        match self {
+            Error::Config(_) | Error::Format { .. } => ExitCode::BadInput,
+            Error::GradientCheck(_) => ExitCode::GradientWrong,
+            Error::Interrupted(_) => ExitCode::Interrupted,
+            _ => ExitCode::Failure,
+        }
+    }
+    /// The message with every cause, joined by ": " (for logs and one-line reports).
+    pub fn full_message(&self) -> String {
+        let mut m = self.to_string();
+        let mut source = std::error::Error::source(self);
+        while let Some(s) = source {
+            m.push_str(": ");
+            m.push_str(&s.to_string());
+            source = s.source();
+        }
+        m
+    }
 }
 
 impl fmt::Display for Error {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
-            Error::Eval { context, source } => write!(f, "{context}: {source}"),
+            Error::Eval { context, .. } => write!(f, "{context}"),
             Error::Config(m) => write!(f, "{m}"),
-            Error::Io { path, source } => write!(f, "{}: {source}", path.display()),
+            Error::Io { path, .. } => write!(f, "{}", path.display()),
             Error::Format { path, message } => write!(f, "{}: {message}", path.display()),
             Error::Numerical(m) => write!(f, "numerical failure: {m}"),
+            Error::Data(m) => write!(f, "{m}"),
+            Error::System(m) => write!(f, "{m}"),
             Error::Adapter(m) => write!(f, "adapter: {m}"),
             Error::GradientCheck(m) => write!(f, "gradient test failed: {m}"),
             Error::Interrupted(m) => write!(f, "interrupted: {m}"),
+            Error::Internal(m) => write!(
+                f,
+                "internal error (a defect of varpost; please report it with this message): {m}"
+            ),
         }
     }
 }
 
-/// The messages above already include their causes, so no separate source chain is exposed.
-impl std::error::Error for Error {}
+impl std::error::Error for Error {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        match self {
+            Error::Eval { source, .. } => Some(source),
+            Error::Io { source, .. } => Some(source),
+            _ => None,
+        }
+    }
+}
 
 /// The crate's result type.
 pub type Result<T> = std::result::Result<T, Error>;

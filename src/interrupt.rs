@@ -30,7 +30,7 @@ impl Interrupt {
             signal_hook::flag::register_conditional_shutdown(sig, 1, Arc::clone(&it.flag))
                 .and_then(|_| signal_hook::flag::register(sig, Arc::clone(&it.flag)))
                 .map_err(|e| {
-                    Error::Config(format!("cannot install the handler for signal {sig}: {e}"))
+                    Error::System(format!("cannot install the handler for signal {sig}: {e}"))
                 })?;
         }
         Ok(it)

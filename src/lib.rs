@@ -7,6 +7,7 @@
 pub mod adapt;
 pub mod adapter;
 pub mod cli;
+pub mod config;
 pub mod diagnostics;
 pub mod error;
 pub mod hash;

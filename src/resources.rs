@@ -54,6 +54,27 @@ pub fn f64_bytes(count: u128) -> u128 {
     count.saturating_mul(8)
 }
 
+/// Reads a text file of at most `max_bytes` (a start point, a run record, a summary): a larger file, or
+/// one that never ends (a device such as /dev/zero), is refused instead of filling the memory.
+pub fn read_bounded(path: &std::path::Path, max_bytes: u64) -> Result<String> {
+    use std::io::Read;
+    let f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let mut buf = Vec::new();
+    f.take(max_bytes + 1)
+        .read_to_end(&mut buf)
+        .map_err(|e| Error::io(path, e))?;
+    if buf.len() as u64 > max_bytes {
+        return Err(Error::format(
+            path,
+            format!(
+                "the file is larger than {} and cannot be what varpost expects here",
+                format_bytes(max_bytes as u128)
+            ),
+        ));
+    }
+    String::from_utf8(buf).map_err(|_| Error::format(path, "not a text file (invalid UTF-8)"))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -65,5 +86,11 @@ mod tests {
             .to_string();
         assert!(e.contains("7.3 TiB") && e.contains("use fewer"), "{e}");
         ensure_fits("a small vector", f64_bytes(1000), "-").unwrap();
+    }
+
+    #[test]
+    fn endless_files_are_refused() {
+        let e = read_bounded(std::path::Path::new("/dev/zero"), 1 << 20).unwrap_err();
+        assert!(e.to_string().contains("larger than 1.0 MiB"), "{e}");
     }
 }

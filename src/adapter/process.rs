@@ -41,7 +41,9 @@ const QUIT_GRACE: Duration = Duration::from_secs(2);
 const TERM_GRACE: Duration = Duration::from_millis(300);
 
 /// Which encoding to ask for after the handshake.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum EncodingChoice {
     /// Binary for states of 1000 components or more when the adapter offers it, otherwise text when

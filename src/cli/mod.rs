@@ -9,14 +9,13 @@ use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::optimize::MapConfig;
 use crate::output::progress::Progress as ProgressBars;
-use crate::pipeline::{
-    self, CheckConfig, HessianRunConfig, MapRunConfig, Metric, ProblemSource, SampleRunConfig,
-};
+use crate::config::{LaplaceCheckConfig, MetricKind, RunConfig};
+use crate::pipeline::{self, CheckConfig, HessianRunConfig, MapRunConfig, ProblemSource};
 use crate::precond::{LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::problem::lorenz96::{Lorenz96Config, Scenario};
 use crate::problem::settings::Settings;
 use crate::problem::Problem;
-use crate::sampler::{KernelKind, SampleConfig};
+use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
 
 /// Posterior uncertainty for strong-constraint 4D-Var: gradient check, L-BFGS analysis, Hessian at the
 /// analysis, and preconditioned MCMC ensembles with convergence diagnostics.
@@ -132,13 +131,13 @@ pub struct ProblemArgs {
 /// Settings of the chains.
 #[derive(Debug, Args)]
 pub struct ChainArgs {
-    /// Sampler kernel: hmc, mala or laplace-mh.
-    #[arg(long, default_value = "hmc")]
-    pub kernel: String,
-    /// Metric (preconditioner) of the chains: laplace (the Hessian approximation above), identity,
-    /// diagonal, dense, low-rank or lbfgs.
-    #[arg(long, default_value = "laplace")]
-    pub metric: String,
+    /// Sampler kernel.
+    #[arg(long, value_enum, default_value_t = KernelKind::default())]
+    pub kernel: KernelKind,
+    /// Metric (preconditioner) of the chains: laplace (the Hessian approximation above), or another
+    /// Hessian approximation built for the chains.
+    #[arg(long, value_enum, default_value_t = MetricKind::default())]
+    pub metric: MetricKind,
     /// Number of chains.
     #[arg(long, default_value_t = SampleConfig::default().chains)]
     pub chains: usize,
@@ -161,7 +160,7 @@ pub struct ChainArgs {
     #[arg(long)]
     pub target_accept: Option<f64>,
     /// HMC integration time in whitened units.
-    #[arg(long, default_value_t = SampleConfig::default().hmc_time)]
+    #[arg(long, default_value_t = SampleConfig::default().hmc.time)]
     pub hmc_time: f64,
     /// Laplace-MH: degrees of freedom of a Student-t proposal (default: the Laplace Gaussian).
     #[arg(long)]
@@ -170,7 +169,7 @@ pub struct ChainArgs {
     #[arg(long)]
     pub adapt_metric: bool,
     /// Laplace draws for the check of how far the Gaussian approximation holds (0 skips it).
-    #[arg(long, default_value_t = 200)]
+    #[arg(long, default_value_t = LaplaceCheckConfig::default().draws)]
     pub laplace_draws: usize,
     /// Skip the gradient test at the start.
     #[arg(long)]
@@ -178,9 +177,9 @@ pub struct ChainArgs {
 }
 
 impl ChainArgs {
-    fn config(&self) -> Result<(SampleConfig, Metric)> {
-        let c = SampleConfig {
-            kernel: self.kernel.parse::<KernelKind>()?,
+    fn config(&self) -> SampleConfig {
+        SampleConfig {
+            kernel: self.kernel,
             chains: self.chains,
             draws: self.draws,
             warmup: self.warmup,
@@ -188,13 +187,14 @@ impl ChainArgs {
             thin: self.thin,
             checkpoint_every: self.checkpoint_every,
             target_accept: self.target_accept,
-            hmc_time: self.hmc_time,
-            t_dof: self.t_dof,
+            hmc: HmcSettings {
+                time: self.hmc_time,
+                ..Default::default()
+            },
+            independence: IndependenceSettings { t_dof: self.t_dof },
             adapt_metric: self.adapt_metric,
             ..Default::default()
-        };
-        c.validate()?;
-        Ok((c, self.metric.parse::<Metric>()?))
+        }
     }
 }
 
@@ -489,18 +489,19 @@ pub fn run(cli: Cli) -> Result<i32> {
             chains,
         } => {
             let map = lbfgs.config()?;
-            let (sampler, metric) = chains.config()?;
-            let cfg = SampleRunConfig {
-                source: problem.source()?,
+            let cfg = RunConfig {
                 start: map.start.clone(),
                 lbfgs: map.lbfgs,
                 laplace: hessian.options()?,
-                metric,
-                sampler,
-                laplace_draws: chains.laplace_draws,
-                check_seed: 1,
+                metric: chains.metric,
+                sampler: chains.config(),
+                laplace_check: LaplaceCheckConfig {
+                    draws: chains.laplace_draws,
+                },
                 skip_check: chains.skip_check,
+                ..RunConfig::new(problem.source()?)
             };
+            cfg.validate()?;
             let loaded = pipeline::load(&cfg.source)?;
             println!(
                 "sampling: {} (n = {})",
@@ -588,7 +589,7 @@ fn command_line() -> String {
 /// whole run, one for the chains' iterations with an ETA; then writes the report.
 fn sample(
     loaded: &pipeline::Loaded,
-    cfg: &SampleRunConfig,
+    cfg: &RunConfig,
     out: &std::path::Path,
     resume: bool,
     quiet: bool,

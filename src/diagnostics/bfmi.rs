@@ -13,7 +13,7 @@ use crate::error::{Error, Result};
 /// energy gives NaN or +∞ (zero variance).
 pub fn bfmi(energies: &[&[f64]]) -> Result<Vec<f64>> {
     if energies.is_empty() {
-        return Err(Error::Config(
+        return Err(Error::Data(
             "E-BFMI: no chains of energies were given".into(),
         ));
     }
@@ -22,7 +22,7 @@ pub fn bfmi(energies: &[&[f64]]) -> Result<Vec<f64>> {
         .enumerate()
         .map(|(c, e)| {
             if e.len() < 2 {
-                return Err(Error::Config(format!(
+                return Err(Error::Data(format!(
                     "E-BFMI: chain {c} has {} energies, at least 2 are needed; run the chain longer",
                     e.len()
                 )));

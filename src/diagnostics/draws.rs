@@ -14,14 +14,14 @@ pub(crate) type Matrix = Vec<Vec<f64>>;
 /// finite) and copies them into a [`Matrix`].
 pub(crate) fn checked(chains: &[&[f64]], what: &str) -> Result<Matrix> {
     let Some(first) = chains.first() else {
-        return Err(Error::Config(format!(
+        return Err(Error::Data(format!(
             "{what}: no chains were given; run at least one chain (four or more for R-hat)"
         )));
     };
     let n = first.len();
     for (c, chain) in chains.iter().enumerate() {
         if chain.len() != n {
-            return Err(Error::Config(format!(
+            return Err(Error::Data(format!(
                 "{what}: chain {c} has {} draws but chain 0 has {n}; all chains must have the same \
                  number of draws (trim them to the shortest)",
                 chain.len()
@@ -29,7 +29,7 @@ pub(crate) fn checked(chains: &[&[f64]], what: &str) -> Result<Matrix> {
         }
     }
     if n < MIN_DRAWS {
-        return Err(Error::Config(format!(
+        return Err(Error::Data(format!(
             "{what}: each chain has {n} draws, at least {MIN_DRAWS} are needed; run the chains longer"
         )));
     }

@@ -30,7 +30,7 @@ pub fn mcse_sd(chains: &[&[f64]]) -> Result<f64> {
 /// the indicator 1{x ≤ q_p} — Vehtari et al. 2021, section 4.4, as ArviZ computes it.
 pub fn mcse_quantile(chains: &[&[f64]], p: f64) -> Result<f64> {
     if !(p > 0.0 && p < 1.0) {
-        return Err(Error::Config(format!(
+        return Err(Error::Data(format!(
             "MCSE of a quantile: probability {p} is outside (0, 1); give e.g. 0.05 or 0.95"
         )));
     }

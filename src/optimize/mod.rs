@@ -49,6 +49,34 @@ impl Default for MapConfig {
     }
 }
 
+impl MapConfig {
+    /// Checks every setting, naming the bad one.
+    pub fn validate(&self) -> Result<()> {
+        if self.history == 0 || self.history > 10_000 {
+            return Err(Error::Config(format!(
+                "--history {}: keep between 1 and 10,000 pairs",
+                self.history
+            )));
+        }
+        if !(self.grad_rtol > 0.0 && self.grad_rtol < 1.0) {
+            return Err(Error::Config(format!(
+                "--grad-rtol {} must lie strictly between 0 and 1",
+                self.grad_rtol
+            )));
+        }
+        if !(self.cost_atol.is_finite() && self.cost_atol >= 0.0) {
+            return Err(Error::Config(format!(
+                "cost tolerance {} must be finite and >= 0",
+                self.cost_atol
+            )));
+        }
+        if self.max_iters == 0 {
+            return Err(Error::Config("--max-iters must be at least 1".into()));
+        }
+        Ok(())
+    }
+}
+
 /// The analysis and how it was found.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct MapResult {

@@ -5,7 +5,7 @@
 
 use std::path::{Path, PathBuf};
 
-use crate::adapter::{AdapterConfig, AdapterProblem};
+use crate::adapter::AdapterProblem;
 use crate::error::{Error, Result};
 use crate::optimize::{find_map, MapConfig, MapResult};
 use crate::output::summary::{CheckSummary, LaplaceSummary, MapSummary, ReferenceSummary};
@@ -21,17 +21,8 @@ pub mod report;
 pub mod sample;
 
 pub use report::{run_report, ReportOutcome};
-pub use sample::{read_run, run_sample, Metric, SampleOutcome, SampleRunConfig};
-
-/// Where the problem comes from.
-#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
-#[serde(rename_all = "lowercase")]
-pub enum ProblemSource {
-    /// A built-in problem by name with its settings (`key=value`).
-    Builtin { name: String, settings: Vec<String> },
-    /// The user's code behind the subprocess adapter protocol.
-    Adapter(AdapterConfig),
-}
+pub use crate::config::{ProblemSource, RunConfig};
+pub use sample::{read_run, run_sample, SampleOutcome};
 
 /// A problem ready to run: counted, with what the tool knows about it.
 pub struct Loaded {
@@ -389,19 +380,9 @@ pub fn run_demo(out: &Path, progress: &dyn crate::sampler::Progress) -> Result<D
     if !check.passed {
         return Err(Error::GradientCheck(check.verdict));
     }
-    let cfg = SampleRunConfig {
-        source,
-        start: None,
-        lbfgs: MapConfig::default(),
-        laplace: LaplaceOptions::default(),
-        metric: Metric::Laplace,
-        sampler: crate::sampler::SampleConfig {
-            kernel: crate::sampler::KernelKind::Hmc,
-            ..Default::default()
-        },
-        laplace_draws: 200,
-        check_seed: 1,
+    let cfg = RunConfig {
         skip_check: true,
+        ..RunConfig::new(source)
     };
     let interrupt = crate::interrupt::Interrupt::from_signals()?;
     let mut sample = run_sample(&loaded, &cfg, out, false, &interrupt, progress)?;

@@ -6,7 +6,7 @@
 //! on resume (those stages are deterministic), and the sampler checkpoints its own state; so a run
 //! killed at any moment and resumed gives the same output and spends model runs only on what was lost.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::sync::Arc;
 
 use rand::SeedableRng;
@@ -14,81 +14,26 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 use rayon::prelude::*;
 
-use super::{analysis, check_summary, laplace_summary, Loaded, MapRunConfig, ProblemSource};
+use super::{analysis, check_summary, laplace_summary, Loaded, MapRunConfig};
+use crate::config::{MetricKind, RunConfig};
 use crate::diagnostics::{self, ComponentStats, Verdict};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
-use crate::optimize::MapConfig;
 use crate::output::summary::{
     ChainReport, DiagnosticsSummary, LaplaceCheckSummary, PosteriorSummary, SamplingSummary,
 };
-use crate::output::{write_atomic, Summary};
-use crate::precond::{laplace, IdentityPrecond, LaplaceMethod, LaplaceOptions, Preconditioner};
+use crate::output::Summary;
+use crate::precond::{laplace, IdentityPrecond, LaplaceOptions, Preconditioner};
 use crate::problem::check::taylor_test;
 use crate::problem::Problem;
 use crate::sampler::checkpoint::checkpoint_path;
-use crate::sampler::{self, Checkpoint, DrawsFile, Progress, SampleConfig, SampleResult, Target};
+use crate::sampler::{self, Checkpoint, DrawsFile, Progress, SampleResult, Target};
 
-/// Which metric the chains run with.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Metric {
-    /// The Laplace approximation itself (the default).
-    Laplace,
-    /// No preconditioning.
-    Identity,
-    /// A Hessian approximation of the given kind, built for the chains.
-    Method(LaplaceMethod),
-}
-
-impl std::str::FromStr for Metric {
-    type Err = Error;
-    fn from_str(s: &str) -> Result<Self> {
-        match s {
-            "laplace" | "auto" => Ok(Metric::Laplace),
-            "identity" => Ok(Metric::Identity),
-            other => other.parse::<LaplaceMethod>().map(Metric::Method).map_err(|_| {
-                Error::Config(format!(
-                    "unknown metric '{other}': choose laplace, identity, diagonal, dense, low-rank or lbfgs"
-                ))
-            }),
-        }
-    }
-}
-
-/// Everything that decides a sampling run; written to DIR/run.json so that `resume` can rebuild it.
-#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
-pub struct SampleRunConfig {
-    pub source: ProblemSource,
-    pub start: Option<PathBuf>,
-    pub lbfgs: MapConfig,
-    pub laplace: LaplaceOptions,
-    pub metric: Metric,
-    pub sampler: SampleConfig,
-    /// Laplace draws for the importance check (0 skips it).
-    pub laplace_draws: usize,
-    /// Seed of the gradient test direction and of the Laplace check draws.
-    pub check_seed: u64,
-    /// Skip the gradient test at the start.
-    pub skip_check: bool,
-}
-
-const RUN_FILE: &str = "run.json";
 const RECORD_FILE: &str = "evaluations.vprec";
 
 /// Reads DIR/run.json.
-pub fn read_run(dir: &Path) -> Result<SampleRunConfig> {
-    let p = dir.join(RUN_FILE);
-    if !p.exists() {
-        return Err(Error::Config(format!(
-            "{} holds no varpost sampling run (no {RUN_FILE}); start one with `varpost sample --out {}`",
-            dir.display(),
-            dir.display()
-        )));
-    }
-    let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
-    serde_json::from_str(&text)
-        .map_err(|e| Error::format(&p, format!("not a varpost run record: {e}")))
+pub fn read_run(dir: &Path) -> Result<RunConfig> {
+    RunConfig::read(dir)
 }
 
 /// What a sampling run produced.
@@ -102,25 +47,23 @@ pub struct SampleOutcome {
 /// Runs (or, with `resume`, continues) the pipeline into `out`.
 pub fn run_sample(
     loaded: &Loaded,
-    cfg: &SampleRunConfig,
+    cfg: &RunConfig,
     out: &Path,
     resume: bool,
     interrupt: &Interrupt,
     progress: &dyn Progress,
 ) -> Result<SampleOutcome> {
-    cfg.sampler.validate()?;
+    cfg.validate()?;
     std::fs::create_dir_all(out).map_err(|e| Error::io(out, e))?;
     if !resume {
-        if out.join(RUN_FILE).exists() || checkpoint_path(out).exists() {
+        if RunConfig::exists_in(out) || checkpoint_path(out).exists() {
             return Err(Error::Config(format!(
                 "{} already holds a sampling run: continue it with `varpost resume {}`, or choose another --out",
                 out.display(),
                 out.display()
             )));
         }
-        let text = serde_json::to_string_pretty(cfg)
-            .map_err(|e| Error::Numerical(format!("cannot encode the run record: {e}")))?;
-        write_atomic(&out.join(RUN_FILE), text.as_bytes())?;
+        cfg.write(out)?;
     }
     let problem = &loaded.problem;
     let n = problem.dim();
@@ -169,11 +112,11 @@ pub fn run_sample(
     let laplace_method = lap.method;
     let laplace_variance = lap.variance.clone();
     let lap_precond: Arc<dyn Preconditioner + '_> = Arc::from(lap.precond);
-    let metric: Arc<dyn Preconditioner + '_> = match cfg.metric {
-        Metric::Laplace => lap_precond.clone(),
-        Metric::Identity => Arc::new(IdentityPrecond::new(n)),
-        Metric::Method(m) if m == laplace_method => lap_precond.clone(),
-        Metric::Method(m) => {
+    let metric: Arc<dyn Preconditioner + '_> = match (cfg.metric, cfg.metric.method()) {
+        (MetricKind::Identity, _) => Arc::new(IdentityPrecond::new(n)),
+        (_, None) => lap_precond.clone(),
+        (_, Some(m)) if m == laplace_method => lap_precond.clone(),
+        (_, Some(m)) => {
             let o = LaplaceOptions {
                 method: Some(m),
                 ..cfg.laplace.clone()
@@ -184,12 +127,12 @@ pub fn run_sample(
     stage(&mut summary, "hessian");
 
     // 4. How far the Laplace Gaussian holds.
-    let check = if cfg.laplace_draws > 0 {
+    let check = if cfg.laplace_check.draws > 0 {
         Some(laplace_weights(
             problem,
             &map.x,
             lap_precond.as_ref(),
-            cfg.laplace_draws,
+            cfg.laplace_check.draws,
             cfg.check_seed,
         )?)
     } else {

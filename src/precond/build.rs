@@ -41,8 +41,9 @@ use crate::error::{Error, Result};
 use crate::problem::{Counted, EvalCounts, Prior, Problem};
 
 /// How the Hessian at the analysis is estimated.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
 #[serde(rename_all = "kebab-case")]
+#[value(rename_all = "kebab-case")]
 pub enum LaplaceMethod {
     /// All n columns of the Hessian, Cholesky-factorised.
     Dense,
@@ -1034,7 +1035,7 @@ mod tests {
         let e = laplace(&p, &[0.0; 3], &[], &LaplaceOptions::default())
             .err()
             .unwrap()
-            .to_string();
+            .full_message();
         assert!(
             e.contains("Hessian-vector product") && e.contains("not finite"),
             "{e}"

@@ -6,14 +6,19 @@ use super::mala::Mala;
 use super::Kernel;
 use crate::error::{Error, Result};
 
-/// Which kernel the chains run.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+/// Which kernel draws the ensemble. The one list of kernel names: options, outputs and run records
+/// all spell them through this enum.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+)]
 #[serde(rename_all = "kebab-case")]
+#[value(rename_all = "kebab-case")]
 pub enum KernelKind {
+    /// Hamiltonian Monte Carlo with the leapfrog integrator (the default).
+    #[default]
+    Hmc,
     /// Preconditioned Metropolis-adjusted Langevin.
     Mala,
-    /// Hamiltonian Monte Carlo with the leapfrog integrator.
-    Hmc,
     /// Independence Metropolis–Hastings with the Laplace Gaussian (or a Student-t) as proposal.
     LaplaceMh,
 }
@@ -29,25 +34,39 @@ impl KernelKind {
     }
 }
 
-impl std::str::FromStr for KernelKind {
-    type Err = Error;
-    fn from_str(s: &str) -> Result<Self> {
-        match s {
-            "mala" => Ok(KernelKind::Mala),
-            "hmc" => Ok(KernelKind::Hmc),
-            "laplace-mh" => Ok(KernelKind::LaplaceMh),
-            _ => Err(Error::Config(format!(
-                "unknown sampler kernel '{s}': choose one of mala, hmc, laplace-mh"
-            ))),
+/// Settings of the HMC kernel.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(default)]
+pub struct HmcSettings {
+    /// Integration time in whitened units (default π/2).
+    pub time: f64,
+    /// Cap on leapfrog steps per iteration (default 1000).
+    pub max_steps: u32,
+}
+
+impl Default for HmcSettings {
+    fn default() -> Self {
+        HmcSettings {
+            time: std::f64::consts::FRAC_PI_2,
+            max_steps: 1000,
         }
     }
 }
 
-/// Everything that decides a sampling run (and so must match when it is resumed).
+/// Settings of the independence (Laplace-MH) kernel.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(default)]
+pub struct IndependenceSettings {
+    /// Degrees of freedom of a Student-t proposal; `None`: the Laplace Gaussian itself.
+    pub t_dof: Option<f64>,
+}
+
+/// Everything that decides a sampling run (and so must match when it is resumed). Fields added later
+/// take their defaults when an older record is read.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-#[serde(deny_unknown_fields)]
+#[serde(default)]
 pub struct SampleConfig {
-    /// The kernel (default MALA).
+    /// The kernel (default HMC, as on the command line).
     pub kernel: KernelKind,
     /// Number of chains (default 4).
     pub chains: usize,
@@ -64,12 +83,10 @@ pub struct SampleConfig {
     /// Target mean acceptance of the step-size adaptation; `None`: the kernel's default (MALA 0.574,
     /// HMC 0.651).
     pub target_accept: Option<f64>,
-    /// HMC integration time in whitened units (default π/2).
-    pub hmc_time: f64,
-    /// HMC cap on leapfrog steps per iteration (default 1000).
-    pub hmc_max_steps: u32,
-    /// Laplace-MH: degrees of freedom of a Student-t proposal; `None`: the Laplace Gaussian itself.
-    pub t_dof: Option<f64>,
+    /// HMC settings.
+    pub hmc: HmcSettings,
+    /// Independence-sampler settings.
+    pub independence: IndependenceSettings,
     /// Chains start at u = init_scale · z, z ~ N(0, I): a draw from the Laplace approximation with its
     /// spread widened by this factor (default 2, so over-dispersed as Gelman & Rubin 1992 recommend).
     pub init_scale: f64,
@@ -83,7 +100,7 @@ pub struct SampleConfig {
 impl Default for SampleConfig {
     fn default() -> Self {
         SampleConfig {
-            kernel: KernelKind::Mala,
+            kernel: KernelKind::default(),
             chains: 4,
             draws: 1000,
             warmup: 1000,
@@ -91,9 +108,8 @@ impl Default for SampleConfig {
             thin: 1,
             checkpoint_every: 100,
             target_accept: None,
-            hmc_time: std::f64::consts::FRAC_PI_2,
-            hmc_max_steps: 1000,
-            t_dof: None,
+            hmc: HmcSettings::default(),
+            independence: IndependenceSettings::default(),
             init_scale: 2.0,
             initial_step_size: None,
             adapt_metric: false,
@@ -101,12 +117,18 @@ impl Default for SampleConfig {
     }
 }
 
+/// The largest number of chains accepted (each chain holds its state and a draws file).
+pub const MAX_CHAINS: usize = 4096;
+
 impl SampleConfig {
     /// Checks every setting, naming the first bad one and its allowed range.
     pub fn validate(&self) -> Result<()> {
         let bad = |m: String| Err(Error::Config(m));
-        if self.chains == 0 {
-            return bad("the number of chains must be at least 1".into());
+        if self.chains == 0 || self.chains > MAX_CHAINS {
+            return bad(format!(
+                "the number of chains {} must lie between 1 and {MAX_CHAINS}",
+                self.chains
+            ));
         }
         if self.draws == 0 {
             return bad("the number of draws per chain must be at least 1".into());
@@ -121,9 +143,10 @@ impl SampleConfig {
             .draws
             .checked_mul(self.thin)
             .and_then(|s| s.checked_add(self.warmup))
-            .is_none()
+            .and_then(|s| s.checked_mul(self.chains as u64))
+            .is_none_or(|total| total > 1 << 48)
         {
-            return bad("warmup + draws × thin overflows: ask for fewer iterations".into());
+            return bad("warmup + draws × thin (times the chains) is too large: ask for fewer iterations".into());
         }
         if let Some(t) = self.target_accept {
             if !(t > 0.0 && t < 1.0) {
@@ -132,25 +155,25 @@ impl SampleConfig {
                 ));
             }
         }
-        if !(self.hmc_time.is_finite() && self.hmc_time > 0.0) {
+        if !(self.hmc.time.is_finite() && self.hmc.time > 0.0 && self.hmc.time <= 1e6) {
             return bad(format!(
-                "HMC integration time {} must be positive",
-                self.hmc_time
+                "HMC integration time {} must be positive and at most 1e6",
+                self.hmc.time
             ));
         }
-        if self.hmc_max_steps == 0 {
+        if self.hmc.max_steps == 0 {
             return bad("the HMC cap on leapfrog steps must be at least 1".into());
         }
-        if let Some(nu) = self.t_dof {
+        if let Some(nu) = self.independence.t_dof {
             if !(nu.is_finite() && nu > 0.0) {
                 return bad(format!(
                     "Student-t degrees of freedom {nu} must be positive and finite"
                 ));
             }
         }
-        if !(self.init_scale.is_finite() && self.init_scale >= 0.0) {
+        if !(self.init_scale.is_finite() && (0.0..=1e6).contains(&self.init_scale)) {
             return bad(format!(
-                "init_scale {} must be finite and not negative",
+                "init_scale {} must be finite, not negative and at most 1e6",
                 self.init_scale
             ));
         }
@@ -172,8 +195,8 @@ impl SampleConfig {
         self.validate()?;
         Ok(match self.kernel {
             KernelKind::Mala => Box::new(Mala),
-            KernelKind::Hmc => Box::new(Hmc::new(self.hmc_time, self.hmc_max_steps)),
-            KernelKind::LaplaceMh => Box::new(LaplaceMh::new(self.t_dof)?),
+            KernelKind::Hmc => Box::new(Hmc::new(self.hmc.time, self.hmc.max_steps)),
+            KernelKind::LaplaceMh => Box::new(LaplaceMh::new(self.independence.t_dof)?),
         })
     }
 }
@@ -198,14 +221,12 @@ mod tests {
         }
         .validate();
         assert!(e.unwrap_err().to_string().contains("target acceptance"));
-        assert!("nuts"
-            .parse::<KernelKind>()
-            .unwrap_err()
-            .to_string()
-            .contains("mala, hmc"));
+        use clap::ValueEnum;
+        assert!(KernelKind::from_str("nuts", false).is_err());
         assert_eq!(
-            "laplace-mh".parse::<KernelKind>().unwrap(),
+            KernelKind::from_str("laplace-mh", false).unwrap(),
             KernelKind::LaplaceMh
         );
+        assert_eq!(SampleConfig::default().kernel, KernelKind::Hmc);
     }
 }

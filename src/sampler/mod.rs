@@ -48,7 +48,7 @@ pub mod welford;
 
 pub use chain::{run, ChainSummary, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
-pub use config::{KernelKind, SampleConfig};
+pub use config::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use target::{CountedProblem, Target};
 pub use welford::Welford;

@@ -305,7 +305,7 @@ fn bad_sampling_input_gives_clear_errors() {
             "--out",
             o_s,
         ],
-        "unknown sampler kernel",
+        "invalid value 'nuts' for '--kernel",
     );
     check(
         &[
@@ -317,7 +317,7 @@ fn bad_sampling_input_gives_clear_errors() {
             "--out",
             o_s,
         ],
-        "unknown metric",
+        "invalid value 'full' for '--metric",
     );
     check(
         &[

@@ -92,7 +92,7 @@ fn check_gaussian(kernel: KernelKind, use_t: bool, name: &str) -> SampleResult {
     };
     let mut cfg = config(kernel, 2500);
     if use_t {
-        cfg.t_dof = Some(5.0);
+        cfg.independence.t_dof = Some(5.0);
     }
     let dir = temp_dir(name);
     let mean_true = g.mean.clone();
@@ -190,7 +190,7 @@ fn check_banana(kernel: KernelKind, t_dof: Option<f64>, draws: u64, name: &str) 
     let (mt, vt) = (b.mean(), b.variance());
     let p = Gaussian::precond(&b.hessian_at_map());
     let mut cfg = config(kernel, draws);
-    cfg.t_dof = t_dof;
+    cfg.independence.t_dof = t_dof;
     let dir = temp_dir(name);
     let x_star = b.map();
     let (res, d) = sample(b, x_star, p, &cfg, &dir);
@@ -284,7 +284,7 @@ fn nonfinite_costs_are_rejections_and_the_truncated_target_is_sampled() {
         g.upper_x0 = Some(1.0 + c * sigma);
         let dir = temp_dir(&format!("trunc-{}", kernel.name()));
         let mut cfg = config(kernel, 4000);
-        cfg.t_dof = t;
+        cfg.independence.t_dof = t;
         let (res, d) = sample(g, vec![1.0, -1.0], Gaussian::precond(&a), &cfg, &dir);
         let rejected: u64 = res.chains.iter().map(|ch| ch.rejected_nonfinite).sum();
         assert!(rejected > 0, "{}: no rejection counted", kernel.name());

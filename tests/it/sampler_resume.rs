@@ -184,7 +184,7 @@ fn fatal_error_saves_state_and_resume_continues_exactly() {
     let mut g = Gaussian::correlated(4);
     g.fatal_after = Some(700);
     let e = run_gauss(g, &c, &dir, false, &Interrupt::new()).unwrap_err();
-    let msg = e.to_string();
+    let msg = e.full_message();
     assert!(matches!(e, Error::Eval { .. }), "{msg}");
     assert!(
         msg.contains("model process died") && msg.contains("chain") && msg.contains("saved"),
