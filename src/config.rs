@@ -34,7 +34,15 @@ pub enum ProblemSource {
 
 /// Which metric (preconditioner) the chains run with.
 #[derive(
-    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
 )]
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
@@ -252,7 +260,9 @@ pub fn validate_laplace(o: &LaplaceOptions) -> Result<()> {
         return bad("--max-rank must be at least 1".into());
     }
     if o.initial_rank == 0 || o.diagonal_probes == 0 {
-        return bad("the first sketch rank and the number of diagonal probes must be at least 1".into());
+        return bad(
+            "the first sketch rank and the number of diagonal probes must be at least 1".into(),
+        );
     }
     if let Some(d) = o.fd_step {
         if !(d.is_finite() && d > 0.0 && d < 1.0) {
@@ -294,6 +304,10 @@ mod tests {
             settings: vec![],
         });
         c.laplace_check.draws = 20;
-        assert!(c.validate().unwrap_err().to_string().contains("at least 50"));
+        assert!(c
+            .validate()
+            .unwrap_err()
+            .to_string()
+            .contains("at least 50"));
     }
 }

@@ -81,9 +81,13 @@ mod tests {
 
     #[test]
     fn huge_sizes_are_refused_with_the_amount() {
-        let e = ensure_fits("a state of 1e12 values", f64_bytes(1_000_000_000_000), "use fewer")
-            .unwrap_err()
-            .to_string();
+        let e = ensure_fits(
+            "a state of 1e12 values",
+            f64_bytes(1_000_000_000_000),
+            "use fewer",
+        )
+        .unwrap_err()
+        .to_string();
         assert!(e.contains("7.3 TiB") && e.contains("use fewer"), "{e}");
         ensure_fits("a small vector", f64_bytes(1000), "-").unwrap();
     }

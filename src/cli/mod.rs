@@ -5,11 +5,11 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
+use crate::config::{LaplaceCheckConfig, MetricKind, RunConfig};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::optimize::MapConfig;
 use crate::output::progress::Progress as ProgressBars;
-use crate::config::{LaplaceCheckConfig, MetricKind, RunConfig};
 use crate::pipeline::{self, CheckConfig, HessianRunConfig, MapRunConfig, ProblemSource};
 use crate::precond::{LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::problem::lorenz96::{Lorenz96Config, Scenario};
@@ -625,7 +625,7 @@ fn sample(
         other => other,
     })?;
     print_sample(&o);
-    let r = pipeline::run_report(out, &command_line())?;
+    let r = pipeline::report_after_sample(out, &o, &command_line())?;
     println!("report: {}", r.html.display());
     println!(
         "output: {} (summary.json, components.csv, ensemble.nc)",

@@ -11,6 +11,7 @@
 //! - [`bfmi`]: the energy diagnostic of Hamiltonian Monte Carlo;
 //! - [`importance_check`]: Pareto k-hat and Kish ESS of importance weights, to judge the Laplace
 //!   (Gaussian at the analysis) approximation;
+//! - [`weighted_component_stats`]: the same summaries for a weighted ensemble;
 //! - [`Verdict`]: a plain-language reading of the checks.
 //!
 //! The methods are those of Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, "Rank-normalization,
@@ -41,6 +42,7 @@ mod rhat;
 mod special;
 mod summary;
 mod verdict;
+mod weighted;
 
 pub use autocov::{autocorrelation, autocovariance};
 pub use bfmi::bfmi;
@@ -53,3 +55,4 @@ pub use summary::{component_stats, ComponentStats};
 pub use verdict::{
     Check, Status, Verdict, CONDITIONAL_CAUTION, ESS_LIMIT, KHAT_LIMIT, MIN_CHAINS, RHAT_LIMIT,
 };
+pub use weighted::weighted_component_stats;

@@ -77,6 +77,53 @@ impl MapConfig {
     }
 }
 
+/// Why a minimisation stopped: data, not an error. Its text (Display) is what the summary records.
+#[derive(Debug, Clone, PartialEq)]
+pub enum StopReason {
+    /// The gradient norm fell below the tolerance, by this factor from the start.
+    GradientReduced { factor: f64 },
+    /// The gradient tolerance was reached when the line search could go no further.
+    GradientTolerance,
+    /// The iteration limit was reached first.
+    IterationLimit,
+    /// The cost stopped decreasing before the gradient tolerance was reached.
+    CostStalled,
+    /// The line search could make no progress (often a wrong gradient).
+    LineSearch(String),
+    /// The last attempt was restarted after a recoverable evaluation failure.
+    Restarted(String),
+    /// Another reason reported by the minimiser.
+    Other(String),
+}
+
+impl std::fmt::Display for StopReason {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            StopReason::GradientReduced { factor } => {
+                write!(f, "gradient norm reduced by {factor:.1e}")
+            }
+            StopReason::GradientTolerance => f.write_str("gradient tolerance reached"),
+            StopReason::IterationLimit => f.write_str("iteration limit reached"),
+            StopReason::CostStalled => f.write_str(
+                "the cost stopped decreasing before the gradient tolerance was reached",
+            ),
+            StopReason::LineSearch(e) => write!(
+                f,
+                "line search stopped: {e} (no descent along the gradient: if this happens early, check \
+                 the gradient with `varpost check`)"
+            ),
+            StopReason::Restarted(e) => write!(f, "restarted after: {e}"),
+            StopReason::Other(m) => f.write_str(m),
+        }
+    }
+}
+
+impl serde::Serialize for StopReason {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
+        s.serialize_str(&self.to_string())
+    }
+}
+
 /// The analysis and how it was found.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct MapResult {
@@ -91,7 +138,7 @@ pub struct MapResult {
     pub iterations: u64,
     pub converged: bool,
     /// Why the minimisation stopped.
-    pub reason: String,
+    pub reason: StopReason,
     /// Whether it ran in the prior-whitened control variable.
     pub whitened: bool,
     /// The last (s, y) pairs in model space, oldest first.
@@ -247,11 +294,7 @@ pub fn find_map(problem: &dyn Problem, x0: &[f64], config: &MapConfig) -> Result
             x0.len()
         )));
     }
-    if config.history == 0 || !(config.grad_rtol > 0.0) || config.max_iters == 0 {
-        return Err(Error::Config(
-            "L-BFGS needs history >= 1, a positive gradient tolerance and max_iters >= 1".into(),
-        ));
-    }
+    config.validate()?;
     let prior = problem.prior().filter(|pr| {
         let mut t = vec![0.0; n];
         pr.dim() == n && pr.solve_sqrt(x0, &mut t)
@@ -264,25 +307,8 @@ pub fn find_map(problem: &dyn Problem, x0: &[f64], config: &MapConfig) -> Result
         failure: Mutex::new(None),
         scale: 1.0,
     };
-    let p0 = match prior {
-        None => x0.to_vec(),
-        Some(pr) => {
-            let d: Vec<f64> = x0.iter().zip(pr.mean()).map(|(a, b)| a - b).collect();
-            let mut v = vec![0.0; n];
-            pr.solve_sqrt(&d, &mut v);
-            v
-        }
-    };
-    let start = obj.eval(&p0).map_err(|_| {
-        let e = obj.failure.lock().ok().and_then(|f| f.clone());
-        Error::eval(
-            "evaluating the cost at the start of the minimisation",
-            e.unwrap_or(EvalError::Failed {
-                message: "unknown failure".into(),
-                recoverable: false,
-            }),
-        )
-    })?;
+    let p0 = to_control(prior, x0);
+    let start = eval_start(&obj, &p0)?;
     let grad_norm_start = norm(&start.gx);
     let first_step = norm(&start.grad) / (n as f64).sqrt();
     if first_step > 1.0 {
@@ -295,119 +321,12 @@ pub fn find_map(problem: &dyn Problem, x0: &[f64], config: &MapConfig) -> Result
     let start = obj
         .eval(&p0)
         .map_err(|_| Error::Numerical("the start point could not be re-used".into()))?;
-    let tol = config.grad_rtol * norm(&start.grad);
-    let mut best = start.clone();
     let accepted = Arc::new(Mutex::new((0u64, VecDeque::from(vec![start.clone()]))));
-    let mut step_max = f64::INFINITY;
-    let mut reason = String::new();
-    let mut converged = false;
-    for attempt in 0..=config.max_restarts {
-        let done = accepted.lock().map(|a| a.0).unwrap_or(0);
-        let remaining = config.max_iters.saturating_sub(done);
-        if remaining == 0 {
-            reason = "iteration limit reached".into();
-            break;
-        }
-        let mut ls = MoreThuenteLineSearch::new();
-        if step_max.is_finite() {
-            ls = ls
-                .with_bounds(f64::EPSILON, step_max)
-                .map_err(|e| Error::Numerical(format!("line search set-up: {e}")))?;
-        }
-        let solver = LBFGS::new(ls, config.history)
-            .with_tolerance_grad(tol)
-            .and_then(|s| s.with_tolerance_cost(config.cost_atol))
-            .map_err(|e| Error::Config(format!("L-BFGS set-up: {e}")))?;
-        let recorder = Recorder {
-            recent: recent.clone(),
-            accepted: accepted.clone(),
-            keep: config.history + 1,
-        };
-        let p_start = best.p.clone();
-        let run = Executor::new(&obj, solver)
-            .configure(|s| s.param(p_start).max_iters(remaining))
-            .add_observer(recorder, ObserverMode::Always)
-            .run();
-        // The best accepted point: the lowest cost, except that among points whose costs agree to
-        // round-off (near the minimum the cost no longer tells them apart) the smallest gradient wins.
-        if let Ok(acc) = accepted.lock() {
-            for pt in acc.1.iter() {
-                let noise = 1e-13 * best.cost.abs().max(pt.cost.abs());
-                let better = pt.cost < best.cost - noise
-                    || ((pt.cost - best.cost).abs() <= noise && norm(&pt.grad) < norm(&best.grad));
-                if better {
-                    best = pt.clone();
-                }
-            }
-        }
-        let gn = norm(&best.grad);
-        let fail = obj.failure.lock().ok().and_then(|mut f| f.take());
-        if let Some(ev) = &fail {
-            if ev.is_recoverable() && attempt < config.max_restarts && gn > tol {
-                step_max = if step_max.is_finite() {
-                    step_max / 10.0
-                } else {
-                    1.0
-                };
-                reason = format!("restarted after: {ev}");
-                continue;
-            }
-            if !ev.is_recoverable() {
-                return Err(Error::eval("minimising the cost", ev.clone()));
-            }
-        }
-        match run {
-            Ok(res) => {
-                converged = gn <= tol;
-                reason = match res.state().get_termination_reason() {
-                    Some(TerminationReason::SolverConverged) if converged => {
-                        format!(
-                            "gradient norm reduced by {:.1e}",
-                            norm(&start.grad) / gn.max(f64::MIN_POSITIVE)
-                        )
-                    }
-                    Some(TerminationReason::SolverConverged) => {
-                        "the cost stopped decreasing before the gradient tolerance was reached"
-                            .into()
-                    }
-                    Some(TerminationReason::MaxItersReached) => "iteration limit reached".into(),
-                    Some(r) => r.text().to_string(),
-                    None => "stopped".into(),
-                };
-                break;
-            }
-            Err(e) => {
-                match fail {
-                    Some(ev) => return Err(Error::eval("minimising the cost", ev)),
-                    None if gn <= tol => {
-                        converged = true;
-                        reason = "gradient tolerance reached".into();
-                        break;
-                    }
-                    None => {
-                        // A line search that cannot make progress ends the minimisation where it is.
-                        reason = format!("line search stopped: {e}");
-                        break;
-                    }
-                }
-            }
-        }
-    }
+    let (best, converged, reason) = minimise(&obj, &start, config, &recent, &accepted)?;
     let (iterations, pts) = accepted
         .lock()
         .map(|a| (a.0, a.1.clone()))
         .unwrap_or_default();
-    // Model-space pairs from consecutive accepted iterates with positive curvature.
-    let pts: Vec<Point> = pts.into_iter().collect();
-    let pairs = pts
-        .windows(2)
-        .map(|w| {
-            let s: Vec<f64> = w[1].x.iter().zip(&w[0].x).map(|(a, b)| a - b).collect();
-            let y: Vec<f64> = w[1].gx.iter().zip(&w[0].gx).map(|(a, b)| a - b).collect();
-            (s, y)
-        })
-        .filter(|(s, y)| s.iter().zip(y).map(|(a, b)| a * b).sum::<f64>() > 0.0)
-        .collect();
     Ok(MapResult {
         grad_norm: norm(&best.gx),
         x: best.x,
@@ -419,6 +338,156 @@ pub fn find_map(problem: &dyn Problem, x0: &[f64], config: &MapConfig) -> Result
         converged,
         reason,
         whitened: prior.is_some(),
-        pairs,
+        pairs: pairs_of(pts.into_iter().collect()),
     })
+}
+
+/// The control variable of a model-space point: v = S⁻¹ (x − xb) with the prior, x itself without.
+fn to_control(prior: Option<&dyn Prior>, x0: &[f64]) -> Vec<f64> {
+    match prior {
+        None => x0.to_vec(),
+        Some(pr) => {
+            let d: Vec<f64> = x0.iter().zip(pr.mean()).map(|(a, b)| a - b).collect();
+            let mut v = vec![0.0; x0.len()];
+            pr.solve_sqrt(&d, &mut v);
+            v
+        }
+    }
+}
+
+/// The first evaluation; its failure stops the minimisation with the cause.
+fn eval_start(obj: &Objective<'_>, p0: &[f64]) -> Result<Point> {
+    obj.eval(p0).map_err(|_| {
+        let e = obj.failure.lock().ok().and_then(|f| f.clone());
+        Error::eval(
+            "evaluating the cost at the start of the minimisation",
+            e.unwrap_or(EvalError::Failed {
+                message: "unknown failure".into(),
+                recoverable: false,
+            }),
+        )
+    })
+}
+
+type Accepted = Arc<Mutex<(u64, VecDeque<Point>)>>;
+
+/// L-BFGS runs from the best point so far, restarted with a shorter step bound after a recoverable
+/// failure; returns the best point, whether it converged and why it stopped.
+fn minimise(
+    obj: &Objective<'_>,
+    start: &Point,
+    config: &MapConfig,
+    recent: &Arc<Mutex<VecDeque<Point>>>,
+    accepted: &Accepted,
+) -> Result<(Point, bool, StopReason)> {
+    let tol = config.grad_rtol * norm(&start.grad);
+    let mut best = start.clone();
+    let mut step_max = f64::INFINITY;
+    let mut reason = StopReason::IterationLimit;
+    for attempt in 0..=config.max_restarts {
+        let done = accepted.lock().map(|a| a.0).unwrap_or(0);
+        let remaining = config.max_iters.saturating_sub(done);
+        if remaining == 0 {
+            reason = StopReason::IterationLimit;
+            break;
+        }
+        let solver = lbfgs_solver(config, tol, step_max)?;
+        let recorder = Recorder {
+            recent: recent.clone(),
+            accepted: accepted.clone(),
+            keep: config.history + 1,
+        };
+        let p_start = best.p.clone();
+        let run = Executor::new(obj, solver)
+            .configure(|s| s.param(p_start).max_iters(remaining))
+            .add_observer(recorder, ObserverMode::Always)
+            .run();
+        best = best_accepted(best, accepted);
+        let gn = norm(&best.grad);
+        let fail = obj.failure.lock().ok().and_then(|mut f| f.take());
+        if let Some(ev) = &fail {
+            if ev.is_recoverable() && attempt < config.max_restarts && gn > tol {
+                step_max = if step_max.is_finite() {
+                    step_max / 10.0
+                } else {
+                    1.0
+                };
+                reason = StopReason::Restarted(ev.to_string());
+                continue;
+            }
+            if !ev.is_recoverable() {
+                return Err(Error::eval("minimising the cost", ev.clone()));
+            }
+        }
+        let r = match run {
+            Ok(res) => stop_reason(res.state().get_termination_reason(), gn, tol, start),
+            Err(e) => match fail {
+                Some(ev) => return Err(Error::eval("minimising the cost", ev)),
+                None if gn <= tol => StopReason::GradientTolerance,
+                // A line search that cannot make progress ends the minimisation where it is.
+                None => StopReason::LineSearch(e.to_string()),
+            },
+        };
+        return Ok((best, gn <= tol, r));
+    }
+    Ok((best, false, reason))
+}
+
+/// L-BFGS with the More–Thuente line search, its step bounded by `step_max` after a restart.
+fn lbfgs_solver(
+    config: &MapConfig,
+    tol: f64,
+    step_max: f64,
+) -> Result<LBFGS<MoreThuenteLineSearch<Vec<f64>, Vec<f64>, f64>, Vec<f64>, Vec<f64>, f64>> {
+    let mut ls = MoreThuenteLineSearch::new();
+    if step_max.is_finite() {
+        ls = ls
+            .with_bounds(f64::EPSILON, step_max)
+            .map_err(|e| Error::Numerical(format!("line search set-up: {e}")))?;
+    }
+    LBFGS::new(ls, config.history)
+        .with_tolerance_grad(tol)
+        .and_then(|s| s.with_tolerance_cost(config.cost_atol))
+        .map_err(|e| Error::Numerical(format!("L-BFGS set-up: {e}")))
+}
+
+/// The best accepted point: the lowest cost, except that among points whose costs agree to round-off
+/// (near the minimum the cost no longer tells them apart) the smallest gradient wins.
+fn best_accepted(mut best: Point, accepted: &Accepted) -> Point {
+    if let Ok(acc) = accepted.lock() {
+        for pt in acc.1.iter() {
+            let noise = 1e-13 * best.cost.abs().max(pt.cost.abs());
+            let better = pt.cost < best.cost - noise
+                || ((pt.cost - best.cost).abs() <= noise && norm(&pt.grad) < norm(&best.grad));
+            if better {
+                best = pt.clone();
+            }
+        }
+    }
+    best
+}
+
+/// Why a completed L-BFGS run stopped.
+fn stop_reason(t: Option<&TerminationReason>, gn: f64, tol: f64, start: &Point) -> StopReason {
+    match t {
+        Some(TerminationReason::SolverConverged) if gn <= tol => StopReason::GradientReduced {
+            factor: norm(&start.grad) / gn.max(f64::MIN_POSITIVE),
+        },
+        Some(TerminationReason::SolverConverged) => StopReason::CostStalled,
+        Some(TerminationReason::MaxItersReached) => StopReason::IterationLimit,
+        Some(r) => StopReason::Other(r.text().to_string()),
+        None => StopReason::Other("stopped".into()),
+    }
+}
+
+/// Model-space pairs from consecutive accepted iterates with positive curvature.
+fn pairs_of(pts: Vec<Point>) -> Vec<(Vec<f64>, Vec<f64>)> {
+    pts.windows(2)
+        .map(|w| {
+            let s: Vec<f64> = w[1].x.iter().zip(&w[0].x).map(|(a, b)| a - b).collect();
+            let y: Vec<f64> = w[1].gx.iter().zip(&w[0].gx).map(|(a, b)| a - b).collect();
+            (s, y)
+        })
+        .filter(|(s, y)| s.iter().zip(y).map(|(a, b)| a * b).sum::<f64>() > 0.0)
+        .collect()
 }

@@ -281,7 +281,7 @@ impl Summary {
     /// Reads DIR/summary.json.
     pub fn read(dir: &Path) -> Result<Self> {
         let p = dir.join("summary.json");
-        let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
+        let text = crate::resources::read_bounded(&p, 1 << 30)?;
         serde_json::from_str(&text)
             .map_err(|e| Error::format(&p, format!("not a varpost summary: {e}")))
     }

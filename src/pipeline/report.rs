@@ -1,10 +1,12 @@
-//! The report of a sampling run, from its folder: components.csv, ensemble.nc, the PNG plots and
-//! report.html. It works on a finished run and on a partial one (a run still going, interrupted or
-//! killed): the draws files hold every complete draw, cut to the shortest chain.
+//! The report of a sampling run: components.csv, ensemble.nc, the PNG plots and report.html. `sample`
+//! hands over the diagnostics it computed ([`report_after_sample`]); `varpost report` computes them
+//! from the folder ([`run_report`]), for a finished or a partial run (the draws files hold every
+//! complete draw, cut to the shortest chain).
 
 use std::path::{Path, PathBuf};
 
-use super::sample::{diagnose, read_run};
+use super::diagnose::diagnose;
+use super::sample::{read_run, SampleOutcome};
 use crate::diagnostics::{autocorrelation, ComponentStats, Status, Verdict, CONDITIONAL_CAUTION};
 use crate::error::Result;
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};
@@ -15,7 +17,7 @@ use crate::output::plots::{
 use crate::output::summary::CAUTION;
 use crate::output::table::{write_components, ComponentTable};
 use crate::output::{worst_first, Summary};
-use crate::sampler::open_chains;
+use crate::sampler::{ChainDraws, Ensemble};
 
 /// What the report found and wrote.
 pub struct ReportOutcome {
@@ -35,96 +37,184 @@ const PLOTTED: usize = 4;
 /// Lags shown in the autocorrelation plot.
 const LAGS: usize = 60;
 
-/// Writes the report files of the run in `dir`; `command_line` goes into the NetCDF history.
+/// Everything the report is written from.
+struct ReportData {
+    summary: Summary,
+    draws: ChainDraws,
+    kernel: String,
+    stats: Vec<ComponentStats>,
+    verdict: Verdict,
+    names: Vec<String>,
+    analysis: Vec<f64>,
+    laplace_std: Option<Vec<f64>>,
+    background_std: Option<Vec<f64>>,
+}
+
+impl ReportData {
+    fn new(
+        summary: Summary,
+        draws: ChainDraws,
+        kernel: String,
+        stats: Vec<ComponentStats>,
+        verdict: Verdict,
+    ) -> Self {
+        let n = summary.dim;
+        let names = summary
+            .component_names
+            .clone()
+            .filter(|v| v.len() == n)
+            .unwrap_or_else(|| (0..n).map(|i| format!("x{i}")).collect());
+        let analysis = summary
+            .map
+            .as_ref()
+            .map(|m| m.x.clone())
+            .unwrap_or_default();
+        let sqrt = |v: &Vec<f64>| v.iter().map(|x| x.sqrt()).collect::<Vec<f64>>();
+        let laplace_std = summary.laplace.as_ref().map(|l| sqrt(&l.variance));
+        let background_std = summary.background_variance.as_ref().map(sqrt);
+        ReportData {
+            summary,
+            draws,
+            kernel,
+            stats,
+            verdict,
+            names,
+            analysis,
+            laplace_std,
+            background_std,
+        }
+    }
+}
+
+/// Writes the report files of the run in `dir`, computing its diagnostics from the draws files;
+/// `command_line` goes into the NetCDF history.
 pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
     let run = read_run(dir)?;
     let summary = Summary::read(dir)?;
     let chains = run.sampler.chains;
-    let n = summary.dim;
-    let (stats, _) = diagnose(dir, chains, n)?;
-    let names: Vec<String> = summary
-        .component_names
-        .clone()
-        .filter(|v| v.len() == n)
-        .unwrap_or_else(|| (0..n).map(|i| format!("x{i}")).collect());
-    let analysis: Vec<f64> = summary
-        .map
-        .as_ref()
-        .map(|m| m.x.clone())
-        .unwrap_or_default();
-    let laplace_var = summary.laplace.as_ref().map(|l| l.variance.clone());
-    let laplace_std: Option<Vec<f64>> = laplace_var
-        .as_ref()
-        .map(|v| v.iter().map(|x| x.sqrt()).collect());
-    let background_std: Option<Vec<f64>> = summary
-        .background_variance
-        .as_ref()
-        .map(|v| v.iter().map(|x| x.sqrt()).collect());
+    let draws = ChainDraws::open(dir, chains)?;
+    if draws.dim != summary.dim {
+        return Err(crate::error::Error::format(
+            dir.join("summary.json"),
+            format!(
+                "the summary says dimension {} but the draws files hold {} components: the folder's files do not belong together",
+                summary.dim, draws.dim
+            ),
+        ));
+    }
+    let (stats, _) = diagnose(&Ensemble::Chains(ChainDraws::open(dir, chains)?))?;
     let khat = summary.laplace_check.as_ref().map(|c| c.khat);
     let verdict = Verdict::from_components(&stats, chains, khat);
-    let order = worst_first(&stats);
+    let data = ReportData::new(
+        summary,
+        draws,
+        run.sampler.kernel.name().into(),
+        stats,
+        verdict,
+    );
+    write_all(dir, &data, command_line)
+}
 
-    // components.csv
+/// Writes the report files of a sampling run that just ended, from its own diagnostics.
+pub fn report_after_sample(
+    dir: &Path,
+    outcome: &SampleOutcome,
+    command_line: &str,
+) -> Result<ReportOutcome> {
+    let chains = outcome.result.chains.len();
+    let data = ReportData::new(
+        outcome.summary.clone(),
+        ChainDraws::open(dir, chains)?,
+        outcome.result.kernel.into(),
+        outcome.diagnosis.stats.clone(),
+        outcome.diagnosis.verdict.clone(),
+    );
+    write_all(dir, &data, command_line)
+}
+
+fn write_all(dir: &Path, d: &ReportData, command_line: &str) -> Result<ReportOutcome> {
+    let order = worst_first(&d.stats);
     let table = ComponentTable {
-        names: &names,
-        analysis: &analysis,
-        background_std: background_std.as_deref(),
-        laplace_std: laplace_std.as_deref(),
-        stats: &stats,
+        names: &d.names,
+        analysis: &d.analysis,
+        background_std: d.background_std.as_deref(),
+        laplace_std: d.laplace_std.as_deref(),
+        stats: &d.stats,
     };
     write_components(dir, &table)?;
+    write_netcdf(dir, d, command_line)?;
+    write_plots(dir, d, &order)?;
+    let (columns, rows) = table.report_rows(&order);
+    let html = write_html(dir, d, &columns, &rows)?;
+    Ok(ReportOutcome {
+        stats: d.stats.clone(),
+        verdict: d.verdict.clone(),
+        names: d.names.clone(),
+        order,
+        laplace_std: d.laplace_std.clone(),
+        html,
+        draws_per_chain: d.draws.len,
+    })
+}
 
-    // ensemble.nc, streamed member by member.
-    let files = open_chains(dir, chains)?;
-    let len = files.iter().map(|f| f.records as usize).min().unwrap_or(0);
-    let pmean: Vec<f64> = stats.iter().map(|s| s.mean).collect();
-    let pvar: Vec<f64> = stats.iter().map(|s| s.sd * s.sd).collect();
-    let title = format!("varpost posterior ensemble: {}", summary.description);
+/// ensemble.nc, streamed member by member.
+fn write_netcdf(dir: &Path, d: &ReportData, command_line: &str) -> Result<()> {
+    let pmean: Vec<f64> = d.stats.iter().map(|s| s.mean).collect();
+    let pvar: Vec<f64> = d.stats.iter().map(|s| s.sd * s.sd).collect();
+    let title = format!("varpost posterior ensemble: {}", d.summary.description);
+    let laplace_var = d.summary.laplace.as_ref().map(|l| l.variance.clone());
     let info = EnsembleInfo {
         title: &title,
         command_line,
-        analysis: &analysis,
-        names: Some(&names),
+        analysis: &d.analysis,
+        names: Some(&d.names),
         units: None,
-        background: summary.background.as_deref(),
-        background_variance: summary.background_variance.as_deref(),
+        background: d.summary.background.as_deref(),
+        background_variance: d.summary.background_variance.as_deref(),
         posterior_mean: Some(&pmean),
         posterior_variance: Some(&pvar),
         laplace_variance: laplace_var.as_deref(),
     };
+    let len = d.draws.len;
     let mut streams = Vec::new();
-    for (c, f) in files.iter().enumerate() {
+    for (c, f) in d.draws.files().iter().enumerate() {
         let records = f.iter()?.take(len).enumerate();
-        streams.push(records.map(move |(d, r)| {
+        streams.push(records.map(move |(i, r)| {
             r.map(|r| Member {
                 chain: c,
-                draw: d,
+                draw: i,
                 state: r.x,
             })
         }));
     }
-    write_ensemble(dir, &info, len * files.len(), streams.into_iter().flatten())?;
+    write_ensemble(
+        dir,
+        &info,
+        len * d.draws.chains(),
+        streams.into_iter().flatten(),
+    )?;
+    Ok(())
+}
 
-    // Plots of the least-converged components.
-    let top: Vec<usize> = order.iter().copied().take(PLOTTED.min(n)).collect();
-    let per_chain: Vec<Vec<Vec<f64>>> = files
+/// Trace, autocorrelation and marginal plots of the least-converged components, and the standard
+/// deviations of every component.
+fn write_plots(dir: &Path, d: &ReportData, order: &[usize]) -> Result<()> {
+    let top: Vec<usize> = order
         .iter()
-        .map(|f| {
-            f.components(&top).map(|mut c| {
-                c.iter_mut().for_each(|v| v.truncate(len));
-                c
-            })
-        })
-        .collect::<Result<_>>()?;
+        .copied()
+        .take(PLOTTED.min(d.names.len()))
+        .collect();
+    let per_chain = d.draws.components(&top)?;
     let comp: Vec<Vec<Vec<f64>>> = (0..top.len())
         .map(|j| per_chain.iter().map(|c| c[j].clone()).collect())
         .collect();
     let labels: Vec<String> = top
         .iter()
         .map(|&i| {
+            let s = &d.stats[i];
             format!(
                 "{} (R-hat {:.3}, bulk ESS {:.0})",
-                names[i], stats[i].rhat, stats[i].ess_bulk
+                d.names[i], s.rhat, s.ess_bulk
             )
         })
         .collect();
@@ -139,8 +229,8 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
     trace_plot(&dir.join("trace.png"), &cs)?;
     let acf: Vec<Vec<Vec<f64>>> = comp
         .iter()
-        .map(|d| {
-            d.iter()
+        .map(|ch| {
+            ch.iter()
                 .map(|c| autocorrelation(c).into_iter().take(LAGS).collect())
                 .collect()
         })
@@ -162,21 +252,28 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
                 label: s.label,
                 chains: s.chains,
             },
-            analysis: analysis.get(i).copied().unwrap_or(f64::NAN),
-            laplace_std: laplace_std.as_ref().map(|l| l[i]),
+            analysis: d.analysis.get(i).copied().unwrap_or(f64::NAN),
+            laplace_std: d.laplace_std.as_ref().map(|l| l[i]),
         })
         .collect();
     marginal_plot(&dir.join("marginals.png"), &marginals)?;
-    let pstd: Vec<f64> = stats.iter().map(|s| s.sd).collect();
+    let pstd: Vec<f64> = d.stats.iter().map(|s| s.sd).collect();
     std_plot(
         &dir.join("std.png"),
         &pstd,
-        laplace_std.as_deref(),
-        background_std.as_deref(),
+        d.laplace_std.as_deref(),
+        d.background_std.as_deref(),
     )?;
+    Ok(())
+}
 
-    // report.html
-    let (columns, rows) = table.report_rows(&order);
+/// report.html.
+fn write_html(
+    dir: &Path,
+    d: &ReportData,
+    columns: &[String],
+    rows: &[Vec<String>],
+) -> Result<PathBuf> {
     let figures = [
         (
             "std.png",
@@ -196,21 +293,49 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
         ),
     ]
     .map(|(file, caption)| Figure { file, caption });
+    let metadata = report_metadata(d);
+    let text: Vec<&str> = d
+        .verdict
+        .sentences
+        .iter()
+        .map(String::as_str)
+        .filter(|s| *s != CONDITIONAL_CAUTION)
+        .collect();
+    let text = text.join(" ");
+    let page_title = format!("varpost report: {}", d.summary.problem);
+    let page = ReportPage {
+        title: &page_title,
+        verdict: &text,
+        passed: Some(d.verdict.status == Status::Converged),
+        caution: CAUTION,
+        columns,
+        rows,
+        max_rows: 50,
+        metadata: &metadata,
+        figures: &figures,
+    };
+    write_report(dir, &page)
+}
+
+fn report_metadata(d: &ReportData) -> Vec<(String, String)> {
+    let s = &d.summary;
     let mut metadata = vec![
-        ("problem".to_string(), summary.description.clone()),
+        ("problem".to_string(), s.description.clone()),
         (
             "chains".to_string(),
             format!(
-                "{chains} chains x {len} draws ({} kernel)",
-                run.sampler.kernel.name()
+                "{} chains x {} draws ({} kernel)",
+                d.draws.chains(),
+                d.draws.len,
+                d.kernel
             ),
         ),
         (
             "evaluations".to_string(),
-            format!("{} model runs", summary.evaluations.model_runs()),
+            format!("{} model runs", s.evaluations.model_runs()),
         ),
     ];
-    if let Some(c) = &summary.laplace_check {
+    if let Some(c) = &s.laplace_check {
         metadata.push((
             "Laplace check".into(),
             format!(
@@ -219,39 +344,11 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
             ),
         ));
     }
-    if summary.diagnostics.is_none() {
+    if s.diagnostics.is_none() {
         metadata.push((
             "state".into(),
             "partial run: the chains have not finished".into(),
         ));
     }
-    let text: Vec<&str> = verdict
-        .sentences
-        .iter()
-        .map(String::as_str)
-        .filter(|s| *s != CONDITIONAL_CAUTION)
-        .collect();
-    let text = text.join(" ");
-    let page_title = format!("varpost report: {}", summary.problem);
-    let page = ReportPage {
-        title: &page_title,
-        verdict: &text,
-        passed: Some(verdict.status == Status::Converged),
-        caution: CAUTION,
-        columns: &columns,
-        rows: &rows,
-        max_rows: 50,
-        metadata: &metadata,
-        figures: &figures,
-    };
-    let html = write_report(dir, &page)?;
-    Ok(ReportOutcome {
-        stats,
-        verdict,
-        names,
-        order,
-        laplace_std,
-        html,
-        draws_per_chain: len,
-    })
+    metadata
 }

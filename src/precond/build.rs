@@ -41,7 +41,9 @@ use crate::error::{Error, Result};
 use crate::problem::{Counted, EvalCounts, Prior, Problem};
 
 /// How the Hessian at the analysis is estimated.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+)]
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
 pub enum LaplaceMethod {

@@ -302,7 +302,9 @@ impl<P: Problem> Problem for Replay<P> {
             let r = r.and_then(|c| self.record(Kind::Cost, xs[i], None, c, &[]).map(|_| c));
             out[i] = Some(r);
         }
-        out.into_iter().map(|r| r.expect("every point evaluated")).collect()
+        out.into_iter()
+            .map(|r| r.expect("every point evaluated"))
+            .collect()
     }
     fn has_hess_vec(&self) -> bool {
         self.inner.has_hess_vec()

@@ -9,7 +9,15 @@ use crate::error::{Error, Result};
 /// Which kernel draws the ensemble. The one list of kernel names: options, outputs and run records
 /// all spell them through this enum.
 #[derive(
-    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
 )]
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
@@ -146,7 +154,10 @@ impl SampleConfig {
             .and_then(|s| s.checked_mul(self.chains as u64))
             .is_none_or(|total| total > 1 << 48)
         {
-            return bad("warmup + draws × thin (times the chains) is too large: ask for fewer iterations".into());
+            return bad(
+                "warmup + draws × thin (times the chains) is too large: ask for fewer iterations"
+                    .into(),
+            );
         }
         if let Some(t) = self.target_accept {
             if !(t > 0.0 && t < 1.0) {

@@ -39,7 +39,9 @@ pub mod chain;
 pub mod checkpoint;
 pub mod config;
 pub mod draws;
+pub mod ensemble;
 pub mod hmc;
+pub mod importance;
 pub mod integrator;
 pub mod laplace_mh;
 pub mod mala;
@@ -50,6 +52,7 @@ pub use chain::{run, ChainSummary, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
 pub use config::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
+pub use ensemble::{ChainDraws, Ensemble, WeightedDraws};
 pub use target::{CountedProblem, Target};
 pub use welford::Welford;
 

@@ -123,6 +123,25 @@ impl<'a> Target<'a> {
         classify(self.problem.cost(&x).map(|j| -j))
     }
 
+    /// log π at several whitened points at once (forward runs only, through [`Problem::cost_batch`], so
+    /// that the problem can evaluate them side by side); `None` where an evaluation failed recoverably.
+    pub fn log_density_batch(&self, us: &[Vec<f64>]) -> Result<Vec<Option<f64>>> {
+        let xs: Vec<Vec<f64>> = us
+            .iter()
+            .map(|u| {
+                let mut x = vec![0.0; self.dim()];
+                self.to_model(u, &mut x);
+                x
+            })
+            .collect();
+        let refs: Vec<&[f64]> = xs.iter().map(|x| x.as_slice()).collect();
+        self.problem
+            .cost_batch(&refs)
+            .into_iter()
+            .map(|r| classify(r.map(|j| -j)))
+            .collect()
+    }
+
     /// log π(u), writing ∇_u log π(u) into `grad` (one forward and adjoint run); `None` where the
     /// evaluation failed recoverably.
     pub fn log_density_grad(&self, u: &[f64], grad: &mut [f64]) -> Result<Option<f64>> {

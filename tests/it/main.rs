@@ -1,6 +1,5 @@
 //! All integration tests in one binary, so that a change in src/ relinks one test target.
 
-mod common;
 mod adapter_cli;
 mod adapter_examples;
 mod adapter_faults;
@@ -10,6 +9,8 @@ mod adapter_python;
 mod cli_core;
 mod cli_hessian;
 mod cli_sample;
+mod common;
+mod config_compat;
 mod core_burgers;
 mod core_linear_gaussian;
 mod core_lorenz96;

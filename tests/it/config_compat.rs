@@ -1,0 +1,58 @@
+//! Run records written by the first release (version 1, no version field) are read by this one.
+
+use std::path::Path;
+
+use varpost::config::{KernelKind, MetricKind, RunConfig, RUN_RECORD_VERSION};
+
+use crate::common::temp_dir;
+
+fn fixture() -> serde_json::Value {
+    let p = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/it/fixtures/run-v1.json");
+    serde_json::from_str(&std::fs::read_to_string(p).unwrap()).unwrap()
+}
+
+fn read(v: &serde_json::Value, name: &str) -> varpost::Result<RunConfig> {
+    let d = temp_dir(name);
+    std::fs::write(d.join("run.json"), serde_json::to_string_pretty(v).unwrap()).unwrap();
+    let r = RunConfig::read(&d);
+    std::fs::remove_dir_all(&d).ok();
+    r
+}
+
+/// The record of a demo run made by the first release (tests/it/fixtures/run-v1.json).
+#[test]
+fn a_first_release_record_reads_with_its_settings() {
+    let c = read(&fixture(), "run-v1").unwrap();
+    assert_eq!(c.version, RUN_RECORD_VERSION);
+    assert_eq!(c.sampler.kernel, KernelKind::Hmc);
+    assert_eq!(c.sampler.hmc.time, std::f64::consts::FRAC_PI_2);
+    assert_eq!(c.sampler.hmc.max_steps, 1000);
+    assert_eq!(c.sampler.independence.t_dof, None);
+    assert_eq!(c.metric, MetricKind::Laplace);
+    assert_eq!(c.laplace_check.draws, 200);
+    assert!(c.skip_check);
+}
+
+#[test]
+fn first_release_metric_and_student_t_settings_carry_over() {
+    let mut v = fixture();
+    v["metric"] = serde_json::json!({ "method": "low-rank" });
+    v["sampler"]["t_dof"] = serde_json::json!(5.0);
+    v["sampler"]["kernel"] = serde_json::json!("laplace-mh");
+    let c = read(&v, "run-v1-t").unwrap();
+    assert_eq!(c.metric, MetricKind::LowRank);
+    assert_eq!(c.sampler.independence.t_dof, Some(5.0));
+    assert_eq!(c.sampler.kernel, KernelKind::LaplaceMh);
+}
+
+#[test]
+fn newer_or_broken_records_are_refused_by_name() {
+    let mut v = fixture();
+    v["version"] = serde_json::json!(99);
+    let e = read(&v, "run-v99").unwrap_err().to_string();
+    assert!(e.contains("newer varpost"), "{e}");
+    let mut v = fixture();
+    v["sampler"]["chains"] = serde_json::json!(0);
+    let e = read(&v, "run-bad").unwrap_err().to_string();
+    assert!(e.contains("chains"), "{e}");
+}
