@@ -11,7 +11,7 @@
 use std::sync::Arc;
 
 use varpost::diagnostics::{component_stats, Verdict};
-use varpost::interrupt::Interrupt;
+use varpost::Interrupt;
 use varpost::optimize::{find_map, MapConfig};
 use varpost::precond::{laplace, LaplaceOptions};
 use varpost::problem::check::gradient_test;

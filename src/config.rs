@@ -30,6 +30,9 @@ pub enum ProblemSource {
     Builtin { name: String, settings: Vec<String> },
     /// The user's code behind the subprocess adapter protocol.
     Adapter(AdapterConfig),
+    /// A problem implemented in Rust and handed to the pipeline in-process
+    /// ([`crate::pipeline::Loaded::from_problem`]); it cannot be reopened from a run record.
+    InProcess { name: String },
 }
 
 /// Which metric (preconditioner) the chains run with.

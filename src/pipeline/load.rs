@@ -24,6 +24,19 @@ pub struct Loaded {
 }
 
 impl Loaded {
+    /// A problem of your own, implemented in Rust, ready for the pipeline; `name` identifies it in
+    /// outputs and checkpoints. Its run records say [`ProblemSource::InProcess`].
+    pub fn from_problem(name: &str, problem: Box<dyn Problem>) -> Loaded {
+        Loaded {
+            problem: Counted::new(Replay::new(problem)),
+            name: name.to_string(),
+            description: format!("{name} (in-process)"),
+            settings: serde_json::Value::Null,
+            reference: None,
+            truth: None,
+        }
+    }
+
     /// Component names: the problem's own, or x0, x1, ….
     pub fn names(&self) -> Vec<String> {
         self.problem
@@ -88,6 +101,10 @@ pub fn load(source: &ProblemSource) -> Result<Loaded> {
                 truth,
             })
         }
+        ProblemSource::InProcess { name } => Err(Error::Config(format!(
+            "the run used the in-process problem '{name}', which cannot be reopened from its record: \
+             hand it to the pipeline again with Loaded::from_problem"
+        ))),
         ProblemSource::Adapter(config) => {
             let p = AdapterProblem::start(config)?;
             let description = match p.label() {

@@ -13,7 +13,7 @@
 //!
 //! ```
 //! use std::sync::Arc;
-//! use varpost::interrupt::Interrupt;
+//! use varpost::Interrupt;
 //! use varpost::precond::IdentityPrecond;
 //! use varpost::problem::linear_gaussian::{LinearGaussian, LinearGaussianConfig};
 //! use varpost::problem::Counted;

@@ -9,7 +9,7 @@ use std::sync::Arc;
 use common::sampling::*;
 use common::temp_dir;
 use nalgebra::{DMatrix, DVector};
-use varpost::interrupt::Interrupt;
+use varpost::Interrupt;
 use varpost::precond::Preconditioner;
 use varpost::problem::{Counted, Problem};
 use varpost::sampler::{run, DrawsFile, KernelKind, SampleConfig, SampleResult, Target};

@@ -11,7 +11,7 @@ use std::time::{Duration, Instant};
 use common::sampling::*;
 use common::temp_dir;
 use varpost::error::Error;
-use varpost::interrupt::Interrupt;
+use varpost::Interrupt;
 use varpost::problem::Counted;
 use varpost::sampler::checkpoint::checkpoint_path;
 use varpost::sampler::{run, Checkpoint, KernelKind, Progress, SampleConfig, SampleResult, Target};

@@ -9,7 +9,7 @@ use std::time::Instant;
 
 use serde::{Deserialize, Serialize};
 use varpost::diagnostics::component_stats;
-use varpost::interrupt::Interrupt;
+use varpost::Interrupt;
 use varpost::optimize::{find_map, MapConfig};
 use varpost::precond::{laplace, IdentityPrecond, LaplaceMethod, LaplaceOptions, Preconditioner};
 use varpost::problem::builtin;

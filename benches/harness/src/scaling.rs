@@ -4,7 +4,7 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use serde::{Deserialize, Serialize};
-use varpost::interrupt::Interrupt;
+use varpost::Interrupt;
 use varpost::precond::{IdentityPrecond, Preconditioner};
 use varpost::sampler::{self, KernelKind, SampleConfig, Target};
 use varpost::{Counted, Problem};
