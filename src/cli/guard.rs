@@ -25,11 +25,11 @@ pub fn install_hook() {
             let place = info
                 .location()
                 .map_or_else(|| "an unknown place".to_string(), |l| l.to_string());
-            let thread = std::thread::current();
-            let mut text = format!(
-                "panic at {place} (thread '{}'): {message}",
-                thread.name().unwrap_or("unnamed")
-            );
+            let thread = std::thread::current()
+                .name()
+                .map(|n| format!(" (thread '{n}')"))
+                .unwrap_or_default();
+            let mut text = format!("panic at {place}{thread}: {message}");
             let trace = std::backtrace::Backtrace::capture();
             if trace.status() == std::backtrace::BacktraceStatus::Captured {
                 text.push_str(&format!("\nbacktrace:\n{trace}"));
