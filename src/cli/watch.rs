@@ -156,7 +156,11 @@ fn show(progress: Progress, watch: &Watch<'_>, state: &AtomicU8) {
         }
         if now_state != RUNNING {
             if let Some(b) = &bars {
-                b.finish();
+                b.finish(if now_state == SUCCEEDED {
+                    "finished"
+                } else {
+                    "stopped (see the error below)"
+                });
             }
             return;
         }
@@ -176,13 +180,12 @@ impl Bars {
         if !progress.is_shown() {
             return None;
         }
+        let group = progress.group();
         Some(Bars {
-            runs: watch
-                .runs
-                .map(|_| progress.stage("model runs", "runs", None)),
+            runs: watch.runs.map(|_| group.stage("model runs", "runs", None)),
             chains: watch
                 .chains
-                .map(|c| progress.stage("chains", "iterations", Some(c.iterations().1))),
+                .map(|c| group.stage("chains", "iterations", Some(c.iterations().1))),
         })
     }
 
@@ -198,7 +201,10 @@ impl Bars {
         }
     }
 
-    fn finish(&self) {
+    fn finish(&self, outcome: &str) {
+        if let Some(b) = self.runs.as_ref().or(self.chains.as_ref()) {
+            b.set_message(outcome.to_string());
+        }
         self.runs.iter().chain(&self.chains).for_each(Bar::finish);
     }
 }

@@ -5,7 +5,7 @@
 use std::io::IsTerminal;
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
-use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
 
 /// How progress is shown on stderr.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -64,12 +64,29 @@ impl Progress {
     /// `total` is the count at which the stage ends, where known (a spinner with the rate otherwise).
     /// It draws only in the bar format.
     pub fn stage(&self, name: &str, unit: &str, total: Option<u64>) -> Bar {
-        let shown = self.is_shown();
-        let target = if shown {
-            ProgressDrawTarget::stderr()
-        } else {
-            ProgressDrawTarget::hidden()
-        };
+        self.group().stage(name, unit, total)
+    }
+
+    /// A group of bars drawn together, one line each (several bars made with [`Progress::stage`]
+    /// would overwrite each other's line).
+    pub fn group(&self) -> BarGroup {
+        BarGroup {
+            multi: self
+                .is_shown()
+                .then(|| MultiProgress::with_draw_target(ProgressDrawTarget::stderr())),
+        }
+    }
+}
+
+/// Bars drawn together on stderr, one line each; draws nothing unless made in the bar format.
+#[derive(Debug, Clone)]
+pub struct BarGroup {
+    multi: Option<MultiProgress>,
+}
+
+impl BarGroup {
+    /// A bar of the group, as [`Progress::stage`] describes.
+    pub fn stage(&self, name: &str, unit: &str, total: Option<u64>) -> Bar {
         // Braces would be read as template keys.
         let unit: String = unit.chars().filter(|c| *c != '{' && *c != '}').collect();
         let template = match total {
@@ -82,14 +99,15 @@ impl Progress {
                  {{msg}}"
             ),
         };
-        let bar = ProgressBar::with_draw_target(total, target);
+        let mut bar = ProgressBar::with_draw_target(total, ProgressDrawTarget::hidden());
         // The template is built above from fixed keys, so this only falls back if indicatif changes.
         let style = ProgressStyle::with_template(&template)
             .unwrap_or_else(|_| ProgressStyle::default_bar())
             .progress_chars("=> ");
         bar.set_style(style);
         bar.set_prefix(name.to_string());
-        if shown {
+        if let Some(m) = &self.multi {
+            bar = m.add(bar);
             bar.enable_steady_tick(Duration::from_millis(200));
         }
         Bar { bar }
