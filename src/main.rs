@@ -1,24 +1,45 @@
-//! The varpost binary: parse, run, and turn the result into an exit code and a readable error.
+//! The varpost binary: parse, run, and turn the result into the process's exit code (only through
+//! `ExitCode::code` and `Error::exit_code`) and a readable error with its causes.
 
-use clap::Parser;
+use std::io::Write;
+
+use varpost::error::ExitCode;
 
 fn main() {
-    let cli = varpost::cli::Cli::parse();
-    match varpost::cli::run(cli) {
-        Ok(code) => std::process::exit(code),
+    let code = match varpost::cli::parse() {
+        // Usage errors are bad input; --help and --version are done.
         Err(e) => {
-            eprintln!("error: {e}");
-            let mut source = std::error::Error::source(&e);
-            while let Some(s) = source {
-                eprintln!("  caused by: {s}");
-                source = s.source();
+            let _ = e.print();
+            if e.use_stderr() {
+                ExitCode::BadInput
+            } else {
+                ExitCode::Success
             }
-            std::process::exit(match e {
-                varpost::Error::Config(_) => 2,
-                varpost::Error::GradientCheck(_) => 3,
-                varpost::Error::Interrupted(_) => 130,
-                _ => 1,
-            });
         }
+        Ok(cli) => match varpost::cli::run(cli) {
+            Ok(code) => code,
+            Err(e) => {
+                print_error(&e);
+                e.exit_code()
+            }
+        },
+    };
+    if let Some(p) = varpost::cli::unreported_panic() {
+        let _ = writeln!(
+            std::io::stderr(),
+            "warning: internal error on a background thread (a defect of varpost; please report it): {p}"
+        );
+    }
+    std::process::exit(code.code());
+}
+
+/// "error: MESSAGE", then each cause on its own line.
+fn print_error(e: &varpost::Error) {
+    let mut err = std::io::stderr().lock();
+    let _ = writeln!(err, "error: {e}");
+    let mut source = std::error::Error::source(e);
+    while let Some(s) = source {
+        let _ = writeln!(err, "  caused by: {s}");
+        source = s.source();
     }
 }

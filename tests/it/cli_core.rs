@@ -161,7 +161,7 @@ fn bad_input_gives_clear_errors() {
         "--grad-rtol",
     );
     fails_with(&["map", "--out", out], 2, "--problem");
-    // A start point of the wrong length, and one with a NaN.
+    // A start point of the wrong length, and one with a NaN: bad files are bad input (2).
     let start = d.join("start.txt");
     std::fs::write(&start, "1 2 3\n").unwrap();
     fails_with(
@@ -174,7 +174,7 @@ fn bad_input_gives_clear_errors() {
             "--out",
             out,
         ],
-        1,
+        2,
         "dimension 40",
     );
     std::fs::write(&start, vec!["1.0"; 39].join("\n") + "\nnan\n").unwrap();
@@ -188,10 +188,10 @@ fn bad_input_gives_clear_errors() {
             "--out",
             out,
         ],
-        1,
+        2,
         "not finite",
     );
-    // A start point where the model blows up: the cost is not finite.
+    // A start point where the model blows up: the cost is not finite (a failure of the run, 1).
     std::fs::write(&start, vec!["1e200"; 40].join("\n")).unwrap();
     fails_with(
         &[
@@ -206,7 +206,7 @@ fn bad_input_gives_clear_errors() {
         1,
         "not finite",
     );
-    // A scenario folder that is missing or corrupt.
+    // A scenario folder that is missing or corrupt (bad input, 2).
     fails_with(
         &[
             "map",
@@ -238,7 +238,7 @@ fn bad_input_gives_clear_errors() {
     let data = format!("data={}", sc.display());
     fails_with(
         &["map", "--problem", "lorenz96", "--set", &data, "--out", out],
-        1,
+        2,
         "site 99",
     );
     std::fs::write(
@@ -248,14 +248,14 @@ fn bad_input_gives_clear_errors() {
     .unwrap();
     fails_with(
         &["map", "--problem", "lorenz96", "--set", &data, "--out", out],
-        1,
+        2,
         "not a number",
     );
     std::fs::write(sc.join("observations.csv"), &obs).unwrap();
     std::fs::write(sc.join("scenario.json"), "{\"config\": {\"model\": 3}}").unwrap();
     fails_with(
         &["map", "--problem", "lorenz96", "--set", &data, "--out", out],
-        1,
+        2,
         "scenario.json",
     );
 }
@@ -288,4 +288,128 @@ fn a_users_own_observations_are_read_from_a_scenario_folder() {
     assert!(o.status.success(), "{}", stderr(&o));
     let s = read_json(&d.join("summary.json"));
     assert_eq!(s["settings"]["obs_every"], 4);
+}
+
+/// Runs `args` and asserts a usage error (exit code 2) naming `option`, without a panic.
+fn refused(args: &[&str], option: &str) {
+    let o = run(args);
+    let e = stderr(&o);
+    assert_eq!(o.status.code(), Some(2), "{args:?}: {e}");
+    assert!(e.contains(option), "{args:?}: expected '{option}' in: {e}");
+    assert!(!e.contains("panicked"), "{args:?}: {e}");
+}
+
+#[test]
+fn every_float_option_is_checked_when_parsed() {
+    // Per option: the subcommand and arguments that reach it, and which of the values are in range.
+    // Values in range are shown to pass the parser by the error that comes next: an adapter option
+    // given without --adapter.
+    const VALUES: [&str; 5] = ["1e30", "1e19", "nan", "-1", "inf"];
+    let cases: [(&[&str], &str, &[&str]); 7] = [
+        (&["map", "--problem", "lorenz96"], "--grad-rtol", &[]),
+        (
+            &["hessian", "--problem", "lorenz96"],
+            "--threshold",
+            &["1e30", "1e19"],
+        ),
+        (&["sample", "--problem", "lorenz96"], "--target-accept", &[]),
+        (&["sample", "--problem", "lorenz96"], "--hmc-time", &[]),
+        (
+            &["sample", "--problem", "lorenz96"],
+            "--t-dof",
+            &["1e30", "1e19"],
+        ),
+        (&["check", "--adapter", "true"], "--eval-timeout", &[]),
+        (&["check", "--adapter", "true"], "--handshake-timeout", &[]),
+    ];
+    for (base, option, accepted) in cases {
+        for v in VALUES {
+            let mut args = base.to_vec();
+            args.extend_from_slice(&[option, v]);
+            if accepted.contains(&v) {
+                args.extend_from_slice(&["--workers", "2"]);
+                refused(&args, "--workers applies only to --adapter");
+            } else {
+                refused(&args, &format!("invalid value '{v}' for '{option}"));
+            }
+        }
+    }
+    // The durations that used to panic or hang name their limit.
+    refused(
+        &["sample", "--adapter", "true", "--eval-timeout", "1e19"],
+        "between 0 (no limit) and 1e9",
+    );
+}
+
+#[test]
+fn adapter_options_with_a_builtin_problem_are_refused() {
+    for (option, value) in [
+        ("--workers", "0"),
+        ("--workers", "4"),
+        ("--encoding", "foo"),
+        ("--encoding", "text"),
+        ("--eval-timeout", "5"),
+        ("--handshake-timeout", "5"),
+        ("--launcher", "mpirun -n 2"),
+        ("--restarts", "5"),
+    ] {
+        let o = run(&["check", "--problem", "lorenz96", option, value]);
+        let e = stderr(&o);
+        assert_eq!(o.status.code(), Some(2), "{option} {value}: {e}");
+        // A value refused by its own parser says so; a valid one is refused as adapter-only.
+        assert!(
+            e.contains(&format!("{option} applies only to --adapter"))
+                || e.contains(&format!("invalid value '{value}' for '{option}")),
+            "{option} {value}: {e}"
+        );
+    }
+    let o = run(&["check", "--problem", "lorenz96", "--eval-timeout", "nan"]);
+    assert!(stderr(&o).contains("not a finite number"), "{}", stderr(&o));
+}
+
+#[test]
+fn without_out_each_subcommand_writes_to_a_folder_named_after_it() {
+    let d = temp_dir("default-out");
+    let in_d = |args: &[&str]| {
+        common::varpost()
+            .args(args)
+            .current_dir(&d)
+            .output()
+            .unwrap()
+    };
+    for (sub, problem) in [
+        ("check", "lorenz96"),
+        ("map", "lorenz96"),
+        ("hessian", "linear-gaussian"),
+    ] {
+        let o = in_d(&[sub, "--problem", problem]);
+        assert!(o.status.success(), "{sub}: {}", stderr(&o));
+        let out = String::from_utf8_lossy(&o.stdout);
+        let folder = format!("varpost-{sub}");
+        assert!(
+            out.lines()
+                .next()
+                .unwrap()
+                .starts_with(&format!("output folder: {folder} (the default")),
+            "{out}"
+        );
+        assert_eq!(
+            read_json(&d.join(&folder).join("summary.json"))["command"],
+            sub
+        );
+    }
+    // `sample` names its folder before anything runs (here: before a setting is refused).
+    let o = in_d(&[
+        "sample",
+        "--problem",
+        "linear-gaussian",
+        "--laplace-draws",
+        "20",
+    ]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(String::from_utf8_lossy(&o.stdout).starts_with("output folder: varpost-sample"));
+    // An explicit --out is named too.
+    let o = in_d(&["check", "--problem", "lorenz96", "--out", "mine"]);
+    assert!(String::from_utf8_lossy(&o.stdout).starts_with("output folder: mine\n"));
+    assert!(d.join("mine/summary.json").exists());
 }

@@ -364,3 +364,154 @@ fn bad_sampling_input_gives_clear_errors() {
         "no varpost sampling run",
     );
 }
+
+/// Waits for `child` at most `limit`; kills it and fails the test if it is still running then.
+fn wait_bounded(
+    mut child: std::process::Child,
+    limit: Duration,
+    what: &str,
+) -> std::process::ExitStatus {
+    let t0 = Instant::now();
+    loop {
+        if let Some(st) = child.try_wait().unwrap() {
+            return st;
+        }
+        if t0.elapsed() > limit {
+            let _ = child.kill();
+            let _ = child.wait();
+            panic!("{what}: still running after {limit:?} (a hang); killed");
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
+#[test]
+fn a_panic_inside_sampling_ends_the_process_with_an_internal_error_and_resume_finishes() {
+    let d = temp_dir("fault-panic");
+    let out = d.join("run");
+    let (so, se) = (d.join("stdout.txt"), d.join("stderr.txt"));
+    let child = common::varpost()
+        .args([
+            "sample",
+            "--problem",
+            "linear-gaussian",
+            "--draws",
+            "100",
+            "--warmup",
+            "100",
+            "--out",
+        ])
+        .arg(&out)
+        .env("VARPOST_FAULT", "panic-in-sampling")
+        .stdout(std::fs::File::create(&so).unwrap())
+        .stderr(std::fs::File::create(&se).unwrap())
+        .spawn()
+        .unwrap();
+    // The bound only catches a hang: the run stops at its first chain iteration.
+    let st = wait_bounded(
+        child,
+        Duration::from_secs(600),
+        "sample with a forced panic",
+    );
+    let e = std::fs::read_to_string(&se).unwrap();
+    assert_eq!(st.code(), Some(1), "{e}");
+    assert!(e.contains("error: internal error"), "{e}");
+    assert!(
+        e.contains("forced by VARPOST_FAULT=panic-in-sampling"),
+        "{e}"
+    );
+    assert!(e.contains("src/cli/fault.rs:"), "the panic's location: {e}");
+    assert!(e.contains("stopped (see the error below)"), "{e}");
+    assert!(!e.contains("panicked"), "no raw panic output: {e}");
+    // The state written before the panic is kept: the run continues where it stopped.
+    let o = run(&["resume", "--quiet", out.to_str().unwrap()]);
+    assert!(
+        o.status.code() == Some(0) || o.status.code() == Some(5),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert_eq!(
+        read_json(&out.join("summary.json"))["posterior"]["draws"],
+        400
+    );
+}
+
+#[test]
+fn an_unknown_fault_is_refused() {
+    let d = temp_dir("fault-unknown");
+    let o = common::varpost()
+        .args(["sample", "--problem", "linear-gaussian", "--out"])
+        .arg(d.join("run"))
+        .env("VARPOST_FAULT", "panic-in-samplng")
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("unknown fault"));
+}
+
+#[test]
+fn with_stderr_captured_sampling_prints_plain_timestamped_progress_lines() {
+    let d = temp_dir("plain-progress");
+    let out = d.join("run");
+    let o = run(&[
+        "sample",
+        "--problem",
+        "linear-gaussian",
+        "--draws",
+        "100",
+        "--warmup",
+        "100",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        o.status.code() == Some(0) || o.status.code() == Some(5),
+        "{e}"
+    );
+    let lines: Vec<&str> = e
+        .lines()
+        .filter(|l| l.contains(" varpost sample ["))
+        .collect();
+    assert!(lines.len() >= 2, "a first and a closing line: {e}");
+    for l in &lines {
+        // 2024-01-31T12:00:00Z varpost sample [0:00:01]: STAGE; N model runs ...
+        let (stamp, rest) = l.split_once(' ').unwrap();
+        assert_eq!(stamp.len(), 20, "{l}");
+        assert!(stamp.ends_with('Z') && stamp.as_bytes()[10] == b'T', "{l}");
+        assert!(
+            rest.contains("model runs") && rest.contains("chain iterations"),
+            "{l}"
+        );
+    }
+    assert!(lines[0].contains("]: before the chains"), "{}", lines[0]);
+    assert!(lines.last().unwrap().contains("]: finished;"), "{e}");
+    assert!(
+        lines
+            .last()
+            .unwrap()
+            .contains("chain iterations 800/800 (100%)"),
+        "{e}"
+    );
+    // --log-format none prints none.
+    let out2 = d.join("run2");
+    let o = run(&[
+        "sample",
+        "--problem",
+        "linear-gaussian",
+        "--draws",
+        "50",
+        "--warmup",
+        "50",
+        "--log-format",
+        "none",
+        "--out",
+        out2.to_str().unwrap(),
+    ]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        o.status.code() == Some(0) || o.status.code() == Some(5),
+        "{e}"
+    );
+    assert!(!e.contains("varpost sample ["), "{e}");
+}

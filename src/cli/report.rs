@@ -1,0 +1,14 @@
+//! `report DIR`: the diagnostics table and the report files of a finished or partial sampling run.
+
+use std::path::Path;
+
+use super::print;
+use crate::error::{ExitCode, Result};
+use crate::pipeline;
+
+/// Writes the report files of the run in `dir` and prints its `rows` worst-converged components.
+pub fn report(dir: &Path, rows: usize) -> Result<ExitCode> {
+    let r = pipeline::run_report(dir, &super::command_line())?;
+    print::report(&r, rows);
+    Ok(ExitCode::Success)
+}
