@@ -11,14 +11,9 @@ use std::fs::File;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-use rand::SeedableRng;
-
-use super::chain::ChainStats;
 use super::config::SampleConfig;
+pub use super::state::{ChainCheckpoint, RngState};
 use super::target::{Fnv64, Target};
-use super::welford::Welford;
-use super::{ChainRng, ChainState};
-use crate::adapt::Warmup;
 use crate::error::{Error, Result};
 use crate::problem::EvalCounts;
 
@@ -29,55 +24,6 @@ const FILE_NAME: &str = "checkpoint.vpck";
 /// The checkpoint file of an output folder.
 pub fn checkpoint_path(out_dir: &Path) -> PathBuf {
     out_dir.join(FILE_NAME)
-}
-
-/// The position of a ChaCha8 stream: its seed, stream number and word position.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct RngState {
-    seed: [u8; 32],
-    stream: u64,
-    /// The 128-bit word position as (high, low) halves.
-    word_pos: [u64; 2],
-}
-
-impl RngState {
-    /// Captures a generator's position.
-    pub fn save(rng: &ChainRng) -> Self {
-        let w = rng.get_word_pos();
-        RngState {
-            seed: rng.get_seed(),
-            stream: rng.get_stream(),
-            word_pos: [(w >> 64) as u64, w as u64],
-        }
-    }
-    /// A generator at the saved position.
-    pub fn restore(&self) -> ChainRng {
-        let mut rng = ChainRng::from_seed(self.seed);
-        rng.set_stream(self.stream);
-        rng.set_word_pos((u128::from(self.word_pos[0]) << 64) | u128::from(self.word_pos[1]));
-        rng
-    }
-}
-
-/// One chain's saved state.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct ChainCheckpoint {
-    /// Iterations done (warm-up included).
-    pub iteration: u64,
-    /// Records in the chain's draws file that belong to the run.
-    pub records: u64,
-    /// The current state.
-    pub state: ChainState,
-    /// The chain's random stream.
-    pub rng: RngState,
-    /// The warm-up schedule.
-    pub warmup: Warmup,
-    /// The step size of the sampling phase (valid once the warm-up is done).
-    pub step_size: f64,
-    /// Acceptance, divergence and rejection counters.
-    pub stats: ChainStats,
-    /// Running moments of the kept draws (model space).
-    pub moments: Welford,
 }
 
 /// The saved state of a whole sampling run.
@@ -252,17 +198,6 @@ impl Checkpoint {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn rng_state_round_trips_mid_block() {
-        let mut a = ChainRng::seed_from_u64(7);
-        a.set_stream(3);
-        let _: Vec<u32> = (0..5).map(|_| rand::Rng::next_u32(&mut a)).collect();
-        let mut b = RngState::save(&a).restore();
-        for _ in 0..100 {
-            assert_eq!(rand::Rng::next_u64(&mut a), rand::Rng::next_u64(&mut b));
-        }
-    }
 
     #[test]
     fn a_missing_checkpoint_says_so() {

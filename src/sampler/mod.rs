@@ -7,7 +7,7 @@
 //!   [`mala`], [`hmc`] (with [`integrator`]), [`laplace_mh`];
 //! - [`chain`]: running the chains in parallel, with warm-up, streaming and checkpoints
 //!   ([`run`]); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
-//!   [`checkpoint`].
+//!   [`checkpoint`] and [`state`] (what a checkpoint saves of one chain).
 //!
 //! # Example
 //!
@@ -43,6 +43,7 @@ pub mod hmc;
 pub mod integrator;
 pub mod laplace_mh;
 pub mod mala;
+pub mod state;
 pub mod target;
 pub mod welford;
 
