@@ -18,6 +18,7 @@ pub mod precond;
 pub mod problem;
 pub mod resources;
 pub mod sampler;
+pub(crate) mod util;
 
 pub use error::{Error, EvalError, Result};
 pub use problem::{Counted, EvalCounts, Problem};

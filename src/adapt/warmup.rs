@@ -22,6 +22,7 @@
 
 use super::dual_averaging::{DualAveraging, DualAveragingSettings};
 use crate::error::{Error, Result};
+use crate::util::moments::welford_push;
 
 /// Fraction of the warm-up before the first restart (step size only).
 const FIRST_STAGE: f64 = 0.25;
@@ -133,12 +134,7 @@ impl Warmup {
             // Draws after iteration `start` up to iteration `end`.
             if self.done > w.start && self.done <= w.end {
                 w.n += 1;
-                let k = w.n as f64;
-                for ((m, s), x) in w.mean.iter_mut().zip(w.m2.iter_mut()).zip(u) {
-                    let d = x - *m;
-                    *m += d / k;
-                    *s += d * (x - *m);
-                }
+                welford_push(w.n, &mut w.mean, &mut w.m2, u);
             }
             if self.done == w.end {
                 let k = w.n as f64;

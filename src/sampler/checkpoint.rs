@@ -7,8 +7,6 @@
 //! (serde_json `float_roundtrip`), so a resumed chain continues bit for bit. Writes are atomic: a
 //! temporary file is written and synced, then renamed over the old one, and the folder is synced.
 
-use std::fs::File;
-use std::io::Write;
 use std::path::{Path, PathBuf};
 
 use super::config::SampleConfig;
@@ -16,6 +14,7 @@ pub use super::state::{ChainCheckpoint, RngState};
 use super::target::{Fnv64, Target};
 use crate::error::{Error, Result};
 use crate::problem::EvalCounts;
+use crate::util::atomic::write_atomic;
 
 /// Version of the checkpoint layout.
 pub const FORMAT_VERSION: u32 = 1;
@@ -53,31 +52,12 @@ pub struct Checkpoint {
 }
 
 impl Checkpoint {
-    /// Writes the checkpoint into `out_dir` atomically.
+    /// Writes the checkpoint into `out_dir` atomically and durably.
     pub fn save(&self, out_dir: &Path) -> Result<()> {
         let path = checkpoint_path(out_dir);
-        let tmp = out_dir.join(format!("{FILE_NAME}.tmp"));
         let payload = serde_json::to_vec(self)
             .map_err(|e| Error::format(&path, format!("cannot encode the sampler state: {e}")))?;
-        let mut h = Fnv64::new();
-        h.write(&payload);
-        let io = |p: &Path, e| Error::io(p, e);
-        let mut f = File::create(&tmp).map_err(|e| io(&tmp, e))?;
-        writeln!(
-            f,
-            "varpost-checkpoint {FORMAT_VERSION} fnv1a64={:016x}",
-            h.finish()
-        )
-        .and_then(|_| f.write_all(&payload))
-        .and_then(|_| f.sync_all())
-        .map_err(|e| io(&tmp, e))?;
-        drop(f);
-        std::fs::rename(&tmp, &path).map_err(|e| io(&path, e))?;
-        // Make the rename itself durable.
-        File::open(out_dir)
-            .and_then(|d| d.sync_all())
-            .map_err(|e| io(out_dir, e))?;
-        Ok(())
+        write_atomic(&path, &encode(&payload))
     }
 
     /// Reads and verifies the checkpoint of `out_dir`; a missing, corrupt or foreign file is an error
@@ -193,6 +173,19 @@ impl Checkpoint {
         }
         Ok(())
     }
+}
+
+/// The file's bytes: the header line with the payload's checksum, then the payload.
+fn encode(payload: &[u8]) -> Vec<u8> {
+    let mut h = Fnv64::new();
+    h.write(payload);
+    let mut out = format!(
+        "varpost-checkpoint {FORMAT_VERSION} fnv1a64={:016x}\n",
+        h.finish()
+    )
+    .into_bytes();
+    out.extend_from_slice(payload);
+    out
 }
 
 #[cfg(test)]

@@ -205,8 +205,3 @@ pub(crate) fn standard_normal(rng: &mut ChainRng, n: usize) -> Vec<f64> {
     use rand_distr::{Distribution, StandardNormal};
     (0..n).map(|_| StandardNormal.sample(rng)).collect()
 }
-
-/// Σ aᵢ bᵢ.
-pub(crate) fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
-}

@@ -17,6 +17,7 @@ use super::{Inputs, Laplace, LaplaceMethod, LaplaceOptions, SpectrumOf};
 use crate::error::{Error, Result};
 use crate::precond::{LowRankPrecond, PriorSqrt};
 use crate::problem::{Prior, Problem};
+use crate::util::vector::dot;
 
 /// The Rayleigh–Ritz result of the grown sketch.
 struct Sketch {
@@ -211,10 +212,6 @@ fn keep_leading<'a>(
     l.info.next_eigenvalue = next_eigenvalue;
     l.info.rank_truncated = rank_truncated;
     Ok(l)
-}
-
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
 }
 
 /// Orthonormalises `ys` against `basis` and against each other (classical Gram–Schmidt applied twice,
