@@ -43,6 +43,35 @@ struct MetricWindow {
     m2: Vec<f64>,
 }
 
+impl MetricWindow {
+    /// Checks a window read from a file: inside the warm-up, vectors of length `dim` with finite
+    /// numbers, and as many draws as the `done` iterations put in it.
+    fn check(&self, dim: usize, total: u64, done: u64) -> std::result::Result<(), String> {
+        if !(self.start <= self.end && self.end <= total) {
+            return Err(format!(
+                "start {} and end {} do not lie within the {total} warm-up iterations",
+                self.start, self.end
+            ));
+        }
+        let expected = done.clamp(self.start, self.end) - self.start;
+        if self.n != expected {
+            return Err(format!(
+                "n is {} draws, but {done} warm-up iterations put {expected} in the window",
+                self.n
+            ));
+        }
+        for (name, v) in [("mean", &self.mean), ("m2", &self.m2)] {
+            if v.len() != dim {
+                return Err(format!("{name} has {} entries, expected {dim}", v.len()));
+            }
+            if let Some(i) = v.iter().position(|x| !x.is_finite()) {
+                return Err(format!("{name}[{i}] is {}, not a finite number", v[i]));
+            }
+        }
+        Ok(())
+    }
+}
+
 /// The warm-up state of one chain.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Warmup {
@@ -153,6 +182,54 @@ impl Warmup {
             *c = DualAveraging::new(avg, c.target(), self.settings)?;
         }
         Ok(())
+    }
+
+    /// Checks a schedule read from a file against the run: `total` warm-up iterations in dimension
+    /// `dim`, of which `done` have been fed. The message names the first bad field.
+    pub fn check(&self, dim: usize, total: u64, done: u64) -> std::result::Result<(), String> {
+        if self.total != total {
+            return Err(format!(
+                "total is {}, the run's warm-up is {total}",
+                self.total
+            ));
+        }
+        if self.done != done {
+            return Err(format!(
+                "done is {}, expected {done} warm-up iterations",
+                self.done
+            ));
+        }
+        if !(self.fixed.is_finite() && self.fixed > 0.0) {
+            return Err(format!(
+                "fixed step size {} is not positive and finite",
+                self.fixed
+            ));
+        }
+        if self.metric.len() != dim {
+            return Err(format!(
+                "metric has {} entries, expected {dim}",
+                self.metric.len()
+            ));
+        }
+        if let Some(i) = self
+            .metric
+            .iter()
+            .position(|v| !(v.is_finite() && *v > 0.0))
+        {
+            return Err(format!(
+                "metric[{i}] is {}, not positive and finite",
+                self.metric[i]
+            ));
+        }
+        if let Some(c) = &self.controller {
+            c.check(done).map_err(|m| format!("controller: {m}"))?;
+        }
+        match &self.window {
+            Some(w) => w
+                .check(dim, total, done)
+                .map_err(|m| format!("window: {m}")),
+            None => Ok(()),
+        }
     }
 
     /// Whether all warm-up iterations have been fed.

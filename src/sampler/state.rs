@@ -70,6 +70,14 @@ impl RngState {
             word_pos: [(w >> 64) as u64, w as u64],
         }
     }
+    /// The seed of the stream.
+    pub fn seed(&self) -> [u8; 32] {
+        self.seed
+    }
+    /// The stream number.
+    pub fn stream(&self) -> u64 {
+        self.stream
+    }
     /// A generator at the saved position.
     pub fn restore(&self) -> ChainRng {
         let mut rng = ChainRng::from_seed(self.seed);

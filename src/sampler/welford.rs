@@ -49,6 +49,20 @@ impl Welford {
         out
     }
 
+    /// Checks an accumulator read from a file: vectors of length `dim` and finite numbers; the message
+    /// names the first bad field.
+    pub fn check(&self, dim: usize) -> Result<(), String> {
+        for (name, v) in [("mean", &self.mean), ("m2", &self.m2)] {
+            if v.len() != dim {
+                return Err(format!("{name} has {} entries, expected {dim}", v.len()));
+            }
+            if let Some(i) = v.iter().position(|x| !x.is_finite()) {
+                return Err(format!("{name}[{i}] is {}, not a finite number", v[i]));
+            }
+        }
+        Ok(())
+    }
+
     /// Number of vectors.
     pub fn count(&self) -> u64 {
         self.n

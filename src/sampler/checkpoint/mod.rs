@@ -16,7 +16,11 @@ use crate::error::{Error, Result};
 use crate::problem::EvalCounts;
 use crate::util::atomic::write_atomic;
 
-/// Version of the checkpoint layout.
+mod validate;
+
+/// Version of the checkpoint layout written by this build. A change of the layout raises it and adds
+/// a reader for the old version in [`Checkpoint::decode`]; tests/it/fixtures/checkpoint-v1/ holds a
+/// file of version 1 that must keep loading.
 pub const FORMAT_VERSION: u32 = 1;
 const FILE_NAME: &str = "checkpoint.vpck";
 
@@ -77,40 +81,30 @@ impl Checkpoint {
         Checkpoint::decode(&path, &bytes)
     }
 
-    fn decode(path: &Path, bytes: &[u8]) -> Result<Self> {
+    /// Decodes and validates the bytes of a checkpoint file (`path` names it in errors). Every failure
+    /// is an error naming what is wrong: the header, the version, the checksum, the JSON content, or the
+    /// first field that is inconsistent with the others ([`validate`]).
+    pub(crate) fn decode(path: &Path, bytes: &[u8]) -> Result<Self> {
         let bad = |m: String| Error::format(path, m);
-        let nl = bytes
-            .iter()
-            .position(|&b| b == b'\n')
-            .ok_or_else(|| bad("not a varpost checkpoint (no header line)".into()))?;
-        let head = std::str::from_utf8(&bytes[..nl])
-            .map_err(|_| bad("not a varpost checkpoint (header is not text)".into()))?;
-        let parts: Vec<&str> = head.split(' ').collect();
-        if parts.len() != 3 || parts[0] != "varpost-checkpoint" {
-            return Err(bad("not a varpost checkpoint (unknown header)".into()));
-        }
-        if parts[1] != FORMAT_VERSION.to_string() {
-            return Err(bad(format!(
-                "checkpoint format version {} cannot be read by this build (version {FORMAT_VERSION})",
-                parts[1]
-            )));
-        }
-        let want = parts[2]
-            .strip_prefix("fnv1a64=")
-            .and_then(|h| u64::from_str_radix(h, 16).ok())
-            .ok_or_else(|| bad("checkpoint header has no readable checksum".into()))?;
-        let payload = &bytes[nl + 1..];
-        let mut h = Fnv64::new();
-        h.write(payload);
-        if h.finish() != want {
-            return Err(bad(
-                "checkpoint is corrupt (checksum mismatch): it cannot be resumed; start a new run in \
-                 an empty folder"
-                    .into(),
-            ));
-        }
-        serde_json::from_slice(payload)
-            .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))
+        let (version, payload) = split_header(bytes).map_err(bad)?;
+        let ck = match version {
+            // Version 1 (varpost 0.1) is the current layout.
+            1 => serde_json::from_slice::<Checkpoint>(payload)
+                .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))?,
+            v => {
+                return Err(bad(format!(
+                    "checkpoint format version {v} cannot be read by this build, which reads \
+                     versions 1 to {FORMAT_VERSION}: resume with the varpost that wrote it"
+                )))
+            }
+        };
+        validate::validate(&ck).map_err(|m| {
+            bad(format!(
+                "checkpoint is inconsistent: {m}. It cannot be resumed; start a new run in an empty \
+                 folder"
+            ))
+        })?;
+        Ok(ck)
     }
 
     /// Checks that this checkpoint belongs to `target` and `config`, naming the first difference. All
@@ -173,6 +167,42 @@ impl Checkpoint {
         }
         Ok(())
     }
+}
+
+/// The format version and the payload of a checkpoint file, after checking the header and the
+/// checksum.
+fn split_header(bytes: &[u8]) -> std::result::Result<(u32, &[u8]), String> {
+    let nl = bytes
+        .iter()
+        .position(|&b| b == b'\n')
+        .ok_or("not a varpost checkpoint (no header line)")?;
+    let head = std::str::from_utf8(&bytes[..nl])
+        .map_err(|_| "not a varpost checkpoint (header is not text)")?;
+    let parts: Vec<&str> = head.split(' ').collect();
+    if parts.len() != 3 || parts[0] != "varpost-checkpoint" {
+        return Err("not a varpost checkpoint (unknown header)".into());
+    }
+    let version: u32 = parts[1].parse().map_err(|_| {
+        format!(
+            "checkpoint header has no readable format version ('{}')",
+            parts[1]
+        )
+    })?;
+    let want = parts[2]
+        .strip_prefix("fnv1a64=")
+        .and_then(|h| u64::from_str_radix(h, 16).ok())
+        .ok_or("checkpoint header has no readable checksum")?;
+    let payload = &bytes[nl + 1..];
+    let mut h = Fnv64::new();
+    h.write(payload);
+    if h.finish() != want {
+        return Err(
+            "checkpoint is corrupt (checksum mismatch): it cannot be resumed; start a new run in \
+             an empty folder"
+                .into(),
+        );
+    }
+    Ok((version, payload))
 }
 
 /// The file's bytes: the header line with the payload's checksum, then the payload.
