@@ -91,12 +91,7 @@ impl Checkpoint {
             // Version 1 (varpost 0.1) is the current layout.
             1 => serde_json::from_slice::<Checkpoint>(payload)
                 .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))?,
-            v => {
-                return Err(bad(format!(
-                    "checkpoint format version {v} cannot be read by this build, which reads \
-                     versions 1 to {FORMAT_VERSION}: resume with the varpost that wrote it"
-                )))
-            }
+            v => return Err(bad(unsupported_version(v))),
         };
         validate::validate(&ck).map_err(|m| {
             bad(format!(
@@ -188,6 +183,9 @@ fn split_header(bytes: &[u8]) -> std::result::Result<(u32, &[u8]), String> {
             parts[1]
         )
     })?;
+    if !(1..=FORMAT_VERSION).contains(&version) {
+        return Err(unsupported_version(version));
+    }
     let want = parts[2]
         .strip_prefix("fnv1a64=")
         .and_then(|h| u64::from_str_radix(h, 16).ok())
@@ -205,6 +203,14 @@ fn split_header(bytes: &[u8]) -> std::result::Result<(u32, &[u8]), String> {
     Ok((version, payload))
 }
 
+/// The refusal of a format version this build cannot read.
+fn unsupported_version(v: u32) -> String {
+    format!(
+        "checkpoint format version {v} cannot be read by this build, which reads versions 1 to \
+         {FORMAT_VERSION}: resume with the varpost that wrote it"
+    )
+}
+
 /// The file's bytes: the header line with the payload's checksum, then the payload.
 fn encode(payload: &[u8]) -> Vec<u8> {
     let mut h = Fnv64::new();
@@ -219,25 +225,4 @@ fn encode(payload: &[u8]) -> Vec<u8> {
 }
 
 #[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn a_missing_checkpoint_says_so() {
-        let e = Checkpoint::load(Path::new("/nonexistent-varpost-folder")).unwrap_err();
-        assert!(e.to_string().contains("no run to resume"), "{e}");
-    }
-
-    #[test]
-    fn corrupt_and_foreign_files_are_refused() {
-        let p = PathBuf::from("x");
-        assert!(Checkpoint::decode(&p, b"hello")
-            .unwrap_err()
-            .to_string()
-            .contains("header"));
-        let e = Checkpoint::decode(&p, b"varpost-checkpoint 1 fnv1a64=0000000000000000\n{}");
-        assert!(e.unwrap_err().to_string().contains("checksum"));
-        let e = Checkpoint::decode(&p, b"varpost-checkpoint 99 fnv1a64=0\n{}");
-        assert!(e.unwrap_err().to_string().contains("version 99"));
-    }
-}
+mod tests;
