@@ -35,7 +35,8 @@ pub mod hessian;
 mod test_support;
 
 pub use hessian::{
-    laplace, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf, DENSE_LIMIT,
+    laplace, DiagonalSource, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf,
+    DENSE_LIMIT,
 };
 
 /// A Gaussian metric given by a square root L of its covariance C = H⁻¹ = L Lᵀ.

@@ -15,25 +15,29 @@ use rand_chacha::ChaCha8Rng;
 /// Inputs of one fuzz test.
 pub(crate) const INPUTS: u64 = 1_000_000;
 
-/// Feeds `inputs` inputs made by `make` to `decode`, each inside `catch_unwind`; prints the counts and
-/// fails on the first panic, showing the start of the input that caused it.
+/// Feeds `inputs` inputs made by `make` to `decode` (which says whether it accepted the input), each
+/// inside `catch_unwind`; prints the counts of inputs, accepted inputs and panics, and fails on the
+/// first panic, showing the start of the input that caused it.
 pub(crate) fn run(
     name: &str,
     inputs: u64,
     rng: &mut ChaCha8Rng,
     mut make: impl FnMut(&mut ChaCha8Rng) -> Vec<u8>,
-    mut decode: impl FnMut(&[u8]),
+    mut decode: impl FnMut(&[u8]) -> bool,
 ) {
-    let mut panics = 0u64;
+    let (mut panics, mut accepted) = (0u64, 0u64);
     let mut first: Option<Vec<u8>> = None;
     for _ in 0..inputs {
         let input = make(rng);
-        if catch_unwind(AssertUnwindSafe(|| decode(&input))).is_err() {
-            panics += 1;
-            first.get_or_insert(input);
+        match catch_unwind(AssertUnwindSafe(|| decode(&input))) {
+            Ok(ok) => accepted += u64::from(ok),
+            Err(_) => {
+                panics += 1;
+                first.get_or_insert(input);
+            }
         }
     }
-    println!("{name}: {inputs} inputs, {panics} panics");
+    println!("{name}: {inputs} inputs, {accepted} accepted, {panics} panics");
     if let Some(input) = first {
         let head = &input[..input.len().min(256)];
         panic!(

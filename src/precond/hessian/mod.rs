@@ -208,8 +208,31 @@ pub struct LaplaceInfo {
     pub rank_truncated: bool,
     /// L-BFGS method: pairs skipped for failing the curvature condition.
     pub pairs_skipped: usize,
+    /// Diagonal method: where the variances come from (absent for the other methods).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub diagonal_source: Option<DiagonalSource>,
+    /// Diagonal method: probed Hessian diagonal entries that were not positive (the reason for the
+    /// low-rank fallback).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub diagonal_nonpositive: usize,
     /// Evaluations spent building it (from the problem's [`Counted`] wrapper).
     pub evaluations: EvalCounts,
+}
+
+/// Where the variances of the diagonal method come from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum DiagonalSource {
+    /// The Hessian diagonal by probing: C = diag(1 / H_ii).
+    Probing,
+    /// Probing gave entries that are not positive (too few probes for a Hessian with large
+    /// off-diagonal entries); the variances are the diagonal of the low-rank Laplace covariance
+    /// instead, which needs the problem's prior.
+    LowRankCovariance,
+}
+
+fn is_zero(n: &usize) -> bool {
+    *n == 0
 }
 
 /// Largest dimension for the dense method (a handful of n×n matrices of 200 MB each at this size).

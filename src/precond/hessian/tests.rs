@@ -441,3 +441,80 @@ fn method_names_round_trip_through_options_and_serde() {
         "{e}"
     );
 }
+
+#[test]
+fn diagonal_falls_back_to_the_low_rank_covariance_where_probing_fails() {
+    // H = B⁻¹ + a 11ᵀ with large prior variances: every off-diagonal entry equals a, as large as the
+    // misfit's share of the diagonal, so 64 Rademacher probes in dimension 400 misjudge many diagonal
+    // entries by ±a·√(n/64) ≈ ±2.5a (Bekas, Kokiopoulou & Saad 2007: the error is the off-diagonal
+    // mass) and some come out negative. The closed form is Gaussian conditioning as above.
+    let (n, a) = (400, 2.0);
+    let var: Vec<f64> = (0..n).map(|i| 50.0 + i as f64).collect();
+    let q = || {
+        Quadratic::from_parts(
+            vec![0.0; n],
+            DMatrix::from_diagonal(&DVector::from_vec(var.clone())),
+            DMatrix::from_element(1, n, 1.0),
+            vec![0.3],
+            vec![1.0 / a],
+        )
+    };
+    let (c, mean) = q().posterior();
+    let truth: Vec<f64> = c.diagonal().iter().copied().collect();
+    let o = LaplaceOptions {
+        eigen_threshold: 1e-9,
+        ..opts(LaplaceMethod::Diagonal)
+    };
+    let p = Counted::new(q());
+    let l = laplace(&p, &mean, &[], &o).unwrap();
+    assert_eq!(l.method, LaplaceMethod::Diagonal);
+    assert_eq!(l.precond.kind(), "diagonal");
+    assert_eq!(
+        l.info.diagonal_source,
+        Some(DiagonalSource::LowRankCovariance)
+    );
+    assert!(l.info.diagonal_nonpositive > 0);
+    assert_eq!(l.rank, Some(1));
+    assert_rel(&l.variance, &truth, 1e-6, "low-rank diagonal");
+    let json = serde_json::to_value(&l.info).unwrap();
+    assert_eq!(json["diagonal_source"], "low-rank-covariance");
+    // Without the prior there is nothing to fall back on: an error that says what to change.
+    let mut bare = q();
+    bare.give_prior = false;
+    let e = laplace(&Counted::new(bare), &mean, &[], &o)
+        .err()
+        .unwrap()
+        .to_string();
+    assert!(
+        e.contains("not positive") && e.contains("Problem::prior"),
+        "{e}"
+    );
+    // Where probing works, it is used and said so; the other methods leave the field out.
+    let l = laplace(
+        &p,
+        &mean,
+        &[],
+        &LaplaceOptions {
+            diagonal_probes: n,
+            ..o.clone()
+        },
+    )
+    .unwrap();
+    assert_eq!(l.info.diagonal_source, Some(DiagonalSource::Probing));
+    assert_rel(
+        &l.variance,
+        &c.try_inverse()
+            .unwrap()
+            .diagonal()
+            .map(|h| 1.0 / h)
+            .as_slice(),
+        1e-9,
+        "probing",
+    );
+    let l = laplace(&p, &mean, &[], &opts(LaplaceMethod::LowRank)).unwrap();
+    assert_eq!(l.info.diagonal_source, None);
+    assert!(serde_json::to_value(&l.info)
+        .unwrap()
+        .get("diagonal_source")
+        .is_none());
+}
