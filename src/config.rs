@@ -20,7 +20,7 @@ pub use crate::precond::{LaplaceMethod, LaplaceOptions};
 pub use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
 
 use crate::error::{Error, Result};
-use crate::output::write_atomic;
+use crate::util::atomic::write_atomic;
 
 /// Where the problem comes from.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]

@@ -71,6 +71,7 @@ pub mod precond;
 pub mod problem;
 mod resources;
 pub mod sampler;
+pub(crate) mod util;
 
 pub use config::{KernelKind, MetricKind, ProblemSource, RunConfig, SampleConfig};
 pub use error::{Error, EvalError, ExitCode, Result};

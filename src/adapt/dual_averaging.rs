@@ -113,6 +113,50 @@ impl DualAveraging {
         }
     }
 
+    /// Checks a state read from a file: settings in range, a target in (0, 1), at most `max_updates`
+    /// updates, finite iterates and positive, finite step sizes. The message names the first bad field.
+    pub fn check(&self, max_updates: u64) -> std::result::Result<(), String> {
+        let s = &self.settings;
+        let finite = [s.gamma, s.t0, s.kappa, s.mu_factor]
+            .iter()
+            .all(|v| v.is_finite());
+        if !(finite
+            && s.gamma > 0.0
+            && s.t0 >= 0.0
+            && s.kappa > 0.5
+            && s.kappa <= 1.0
+            && s.mu_factor > 0.0)
+        {
+            return Err(format!("settings {s:?} are out of range"));
+        }
+        if !(self.target > 0.0 && self.target < 1.0) {
+            return Err(format!("target {} is not in (0, 1)", self.target));
+        }
+        if self.m > max_updates {
+            return Err(format!(
+                "m is {} updates, more than the {max_updates} warm-up iterations done",
+                self.m
+            ));
+        }
+        let fields = [
+            ("mu", self.mu),
+            ("h_bar", self.h_bar),
+            ("log_eps", self.log_eps),
+            ("log_eps_bar", self.log_eps_bar),
+        ];
+        if let Some((name, v)) = fields.iter().find(|(_, v)| !v.is_finite()) {
+            return Err(format!("{name} is {v}, not a finite number"));
+        }
+        if !(self.current().is_normal() && self.averaged().is_normal()) {
+            return Err(format!(
+                "step sizes {:e} (current) and {:e} (averaged) are not both positive and finite",
+                self.current(),
+                self.averaged()
+            ));
+        }
+        Ok(())
+    }
+
     /// The target acceptance probability.
     pub fn target(&self) -> f64 {
         self.target

@@ -7,5 +7,6 @@
 pub mod dual_averaging;
 pub mod warmup;
 
+#[allow(unused_imports)]
 pub use dual_averaging::{DualAveraging, DualAveragingSettings};
 pub use warmup::Warmup;

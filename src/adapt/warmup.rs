@@ -22,6 +22,7 @@
 
 use super::dual_averaging::{DualAveraging, DualAveragingSettings};
 use crate::error::{Error, Result};
+use crate::util::moments::welford_push;
 
 /// Fraction of the warm-up before the first restart (step size only).
 const FIRST_STAGE: f64 = 0.25;
@@ -40,6 +41,35 @@ struct MetricWindow {
     n: u64,
     mean: Vec<f64>,
     m2: Vec<f64>,
+}
+
+impl MetricWindow {
+    /// Checks a window read from a file: inside the warm-up, vectors of length `dim` with finite
+    /// numbers, and as many draws as the `done` iterations put in it.
+    fn check(&self, dim: usize, total: u64, done: u64) -> std::result::Result<(), String> {
+        if !(self.start <= self.end && self.end <= total) {
+            return Err(format!(
+                "start {} and end {} do not lie within the {total} warm-up iterations",
+                self.start, self.end
+            ));
+        }
+        let expected = done.clamp(self.start, self.end) - self.start;
+        if self.n != expected {
+            return Err(format!(
+                "n is {} draws, but {done} warm-up iterations put {expected} in the window",
+                self.n
+            ));
+        }
+        for (name, v) in [("mean", &self.mean), ("m2", &self.m2)] {
+            if v.len() != dim {
+                return Err(format!("{name} has {} entries, expected {dim}", v.len()));
+            }
+            if let Some(i) = v.iter().position(|x| !x.is_finite()) {
+                return Err(format!("{name}[{i}] is {}, not a finite number", v[i]));
+            }
+        }
+        Ok(())
+    }
 }
 
 /// The warm-up state of one chain.
@@ -133,12 +163,7 @@ impl Warmup {
             // Draws after iteration `start` up to iteration `end`.
             if self.done > w.start && self.done <= w.end {
                 w.n += 1;
-                let k = w.n as f64;
-                for ((m, s), x) in w.mean.iter_mut().zip(w.m2.iter_mut()).zip(u) {
-                    let d = x - *m;
-                    *m += d / k;
-                    *s += d * (x - *m);
-                }
+                welford_push(w.n, &mut w.mean, &mut w.m2, u);
             }
             if self.done == w.end {
                 let k = w.n as f64;
@@ -157,6 +182,54 @@ impl Warmup {
             *c = DualAveraging::new(avg, c.target(), self.settings)?;
         }
         Ok(())
+    }
+
+    /// Checks a schedule read from a file against the run: `total` warm-up iterations in dimension
+    /// `dim`, of which `done` have been fed. The message names the first bad field.
+    pub fn check(&self, dim: usize, total: u64, done: u64) -> std::result::Result<(), String> {
+        if self.total != total {
+            return Err(format!(
+                "total is {}, the run's warm-up is {total}",
+                self.total
+            ));
+        }
+        if self.done != done {
+            return Err(format!(
+                "done is {}, expected {done} warm-up iterations",
+                self.done
+            ));
+        }
+        if !(self.fixed.is_finite() && self.fixed > 0.0) {
+            return Err(format!(
+                "fixed step size {} is not positive and finite",
+                self.fixed
+            ));
+        }
+        if self.metric.len() != dim {
+            return Err(format!(
+                "metric has {} entries, expected {dim}",
+                self.metric.len()
+            ));
+        }
+        if let Some(i) = self
+            .metric
+            .iter()
+            .position(|v| !(v.is_finite() && *v > 0.0))
+        {
+            return Err(format!(
+                "metric[{i}] is {}, not positive and finite",
+                self.metric[i]
+            ));
+        }
+        if let Some(c) = &self.controller {
+            c.check(done).map_err(|m| format!("controller: {m}"))?;
+        }
+        match &self.window {
+            Some(w) => w
+                .check(dim, total, done)
+                .map_err(|m| format!("window: {m}")),
+            None => Ok(()),
+        }
     }
 
     /// Whether all warm-up iterations have been fed.

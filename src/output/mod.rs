@@ -9,45 +9,8 @@ pub mod table;
 
 pub use summary::Summary;
 
-use std::path::{Path, PathBuf};
-
 use crate::diagnostics::ComponentStats;
-use crate::error::{Error, Result};
-
-/// Writes `text` to `path` atomically: a temporary file in the same folder, then a rename, so a reader
-/// (or a crash) never sees half a file.
-pub fn write_atomic(path: &Path, text: &[u8]) -> Result<()> {
-    let tmp = temp_sibling(path)?;
-    if let Err(e) = std::fs::write(&tmp, text) {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(Error::io(&tmp, e));
-    }
-    commit(&tmp, path)
-}
-
-/// The temporary file a writer fills before [`commit`] renames it to `path`: a hidden file in the same
-/// folder (so the rename stays on one file system) that keeps the extension, for writers that choose
-/// the format by it. Creates the folder.
-pub(crate) fn temp_sibling(path: &Path) -> Result<PathBuf> {
-    let dir = match path.parent() {
-        Some(d) if !d.as_os_str().is_empty() => d,
-        _ => Path::new("."),
-    };
-    std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, e))?;
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .ok_or_else(|| Error::Config(format!("{} is not a file name", path.display())))?;
-    Ok(dir.join(format!(".tmp-{name}")))
-}
-
-/// Renames a finished temporary file onto its final name; removes it if that fails.
-pub(crate) fn commit(tmp: &Path, path: &Path) -> Result<()> {
-    std::fs::rename(tmp, path).map_err(|e| {
-        let _ = std::fs::remove_file(tmp);
-        Error::io(path, e)
-    })
-}
+pub(crate) use crate::util::atomic::{commit, temp_sibling, write_atomic};
 
 /// Component indices ordered least-converged first: by R-hat descending, then bulk ESS ascending. A
 /// non-finite R-hat or ESS (a stuck chain, too few draws) counts as worst.

@@ -46,6 +46,7 @@ use nalgebra::{DMatrix, DVector};
 use super::low_rank::PriorSqrt;
 use super::Preconditioner;
 use crate::error::{Error, Result};
+use crate::util::vector::dot;
 
 /// The initial inverse Hessian H_0 = L_0 L_0ᵀ.
 enum Initial<'a> {
@@ -98,10 +99,6 @@ fn scale(c: f64, z: &[f64], out: &mut [f64]) {
     for (o, v) in out.iter_mut().zip(z) {
         *o = c * v;
     }
-}
-
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
 }
 
 /// x ← x + c a.

@@ -5,22 +5,39 @@
 //! whitened coordinates u with x = x* + L u, where the preconditioned target is close to N(0, I): they
 //! need L (to map a proposal to the model's space) and Lᵀ (to map the gradient back). Solving with L is
 //! optional: it lets a point given in model space be whitened.
+//!
+//! Two lists, one file per entry:
+//! - the kinds of preconditioner (`kinds!` below): a new kind is one new file here implementing
+//!   [`Preconditioner`] (identity.rs is the smallest example) and one line `module => Type;` in that
+//!   list. Any [`Preconditioner`] can be given to the sampler's [`crate::sampler::Target`] at once;
+//!   offering it as a `--metric` name is the command line's business;
+//! - the methods that estimate the Hessian at the analysis ([`hessian`], entry point [`laplace`]): a
+//!   new method is one new file in `hessian/` with its `build` and one line in the `methods!` list of
+//!   `hessian/mod.rs`.
 
-pub mod build;
-pub mod dense;
-pub mod diagonal;
-pub mod identity;
-pub mod lbfgs;
-pub mod low_rank;
+/// Declares each kind's module and re-exports its public types.
+macro_rules! kinds {
+    ($($module:ident => $($ty:ident),+;)+) => {
+        $(pub mod $module; pub use $module::{$($ty),+};)+
+    };
+}
+
+kinds! {
+    identity => IdentityPrecond;
+    diagonal => DiagonalPrecond;
+    dense => DensePrecond;
+    low_rank => LowRankPrecond, PriorSqrt;
+    lbfgs => LbfgsPrecond;
+}
+
+pub mod hessian;
 #[cfg(test)]
 mod test_support;
 
-pub use build::{laplace, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf};
-pub use dense::DensePrecond;
-pub use diagonal::DiagonalPrecond;
-pub use identity::IdentityPrecond;
-pub use lbfgs::LbfgsPrecond;
-pub use low_rank::{LowRankPrecond, PriorSqrt};
+pub use hessian::{
+    laplace, DiagonalSource, Laplace, LaplaceInfo, LaplaceMethod, LaplaceOptions, SpectrumOf,
+    DENSE_LIMIT,
+};
 
 /// A Gaussian metric given by a square root L of its covariance C = H⁻¹ = L Lᵀ.
 pub trait Preconditioner: Send + Sync {

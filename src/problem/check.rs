@@ -12,6 +12,7 @@ use rand_distr::{Distribution, StandardNormal};
 
 use super::Problem;
 use crate::error::{Error, Result};
+use crate::util::vector::dot;
 
 /// One row of the Taylor test table.
 #[derive(Debug, Clone, Copy, serde::Serialize)]
@@ -191,10 +192,6 @@ fn fd_compare(problem: &dyn Problem, x: &[f64], g: &[f64]) -> Result<f64> {
         .zip(g)
         .map(|(a, b)| (a - b).abs() / scale)
         .fold(0.0, f64::max))
-}
-
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
 }
 
 /// Euclidean norm.

@@ -329,3 +329,95 @@ impl<P: Problem> Problem for Replay<P> {
         self.inner.prior()
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use rand::{RngExt, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    use super::*;
+    use crate::util::fuzz;
+
+    /// The bytes of a valid record of `kind` in dimension `n`, as `Replay::record` writes them.
+    fn valid_record(rng: &mut ChaCha8Rng, kind: u8, n: usize) -> Vec<u8> {
+        let mut b = vec![kind];
+        b.extend((n as u32).to_le_bytes());
+        let vecs = match kind {
+            1 => 1,
+            2 => 2,
+            _ => 3,
+        };
+        let scalars = usize::from(kind != 3);
+        for _ in 0..vecs * n + scalars {
+            b.extend(rng.random_range(-10.0..10.0f64).to_le_bytes());
+        }
+        let mut h = Fnv64::new();
+        h.write(&b);
+        b.extend(h.finish().to_le_bytes());
+        b
+    }
+
+    /// Reads records from `b` as [`Replay::attach`] does, stopping at the end, a torn record or an
+    /// error.
+    fn read_all(b: &[u8], n: usize) -> usize {
+        let mut pos = 0;
+        let mut count = 0;
+        while let Ok(Some((len, ..))) = parse_record(&b[pos..], n) {
+            pos += len;
+            count += 1;
+        }
+        count
+    }
+
+    #[test]
+    fn records_round_trip_and_damage_is_an_error_or_a_torn_tail() {
+        let mut rng = ChaCha8Rng::seed_from_u64(1);
+        let mut b = Vec::new();
+        for kind in [1, 2, 3] {
+            b.extend(valid_record(&mut rng, kind, 3));
+        }
+        assert_eq!(read_all(&b, 3), 3);
+        // A torn last record is the end, not an error.
+        assert_eq!(read_all(&b[..b.len() - 5], 3), 2);
+        // Another dimension, an unknown kind, a flipped bit: errors.
+        let e = parse_record(&b, 4).err().unwrap();
+        assert!(e.contains("dimension 3"), "{e}");
+        let mut bad = b.clone();
+        bad[0] = 9;
+        assert!(parse_record(&bad, 3).err().unwrap().contains("kind 9"));
+        bad[0] = 1;
+        bad[9] ^= 4;
+        assert!(parse_record(&bad, 3).err().unwrap().contains("checksum"));
+    }
+
+    /// Valid record sequences and mutations of them through `parse_record`, in the problem's
+    /// dimension or another one.
+    #[test]
+    #[ignore]
+    fn fuzz_evaluation_record_reader() {
+        let mut rng = ChaCha8Rng::seed_from_u64(0x7ec0);
+        let corpus: Vec<Vec<u8>> = (0..64)
+            .map(|k| {
+                let n = 1 + k % 4;
+                (0..rng.random_range(1..=4))
+                    .flat_map(|_| {
+                        let kind = rng.random_range(1..=3u8);
+                        valid_record(&mut rng, kind, n)
+                    })
+                    .collect()
+            })
+            .collect();
+        let make = |rng: &mut ChaCha8Rng| {
+            let base = &corpus[rng.random_range(0..corpus.len())];
+            let mut b = fuzz::mutate(rng, base, &corpus);
+            // The dimension the reader expects, in the first byte of the input.
+            b.insert(0, rng.random_range(1..=5u8));
+            b
+        };
+        fuzz::run("fuzz_evaluation_record_reader", fuzz::INPUTS, &mut rng, make, |b| {
+            // Accepted: at least one whole record read.
+            b.split_first()
+                .is_some_and(|(&n, rest)| read_all(rest, usize::from(n)) > 0)
+        });
+    }
+}

@@ -22,13 +22,15 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use rand::SeedableRng;
 use rayon::prelude::*;
 
-use super::checkpoint::{checkpoint_path, ChainCheckpoint, Checkpoint, RngState};
+use super::checkpoint::{checkpoint_path, Checkpoint};
 use super::config::SampleConfig;
 use super::draws::{
     draws_path, DrawRecord, DrawsWriter, FLAG_ACCEPTED, FLAG_DIVERGENT, FLAG_NONFINITE,
 };
+use super::state::{ChainCheckpoint, RngState};
+pub use super::state::{ChainStats, PhaseStats};
 use super::welford::Welford;
-use super::{standard_normal, ChainRng, ChainState, Kernel, StepInfo, Target};
+use super::{standard_normal, ChainRng, ChainState, Kernel, Target};
 use crate::adapt::Warmup;
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
@@ -44,47 +46,6 @@ impl<F: Fn(usize, u64, u64) + Sync> Progress for F {
     fn advance(&self, chain: usize, done: u64, total: u64) {
         self(chain, done, total)
     }
-}
-
-/// Counters of one phase of one chain.
-#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct PhaseStats {
-    /// Iterations done.
-    pub iterations: u64,
-    /// Sum of the acceptance probabilities.
-    pub accept_prob_sum: f64,
-    /// Accepted proposals.
-    pub accepted: u64,
-    /// Divergent HMC trajectories.
-    pub divergences: u64,
-    /// Proposals rejected because they could not be evaluated.
-    pub rejected_nonfinite: u64,
-    /// Leapfrog steps / gradient evaluations done by the kernel.
-    pub steps: u64,
-}
-
-impl PhaseStats {
-    fn add(&mut self, info: &StepInfo) {
-        self.iterations += 1;
-        self.accept_prob_sum += info.accept_prob;
-        self.accepted += u64::from(info.accepted);
-        self.divergences += u64::from(info.divergent);
-        self.rejected_nonfinite += u64::from(info.nonfinite);
-        self.steps += u64::from(info.n_steps);
-    }
-    /// Mean acceptance probability (NaN before any iteration).
-    pub fn acceptance(&self) -> f64 {
-        self.accept_prob_sum / self.iterations as f64
-    }
-}
-
-/// Counters of one chain, by phase.
-#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct ChainStats {
-    /// During the warm-up.
-    pub warmup: PhaseStats,
-    /// During sampling.
-    pub sampling: PhaseStats,
 }
 
 /// What one chain reports.
@@ -349,7 +310,6 @@ pub fn run(
     progress: &dyn Progress,
 ) -> Result<SampleResult> {
     let kernel = config.build_kernel()?;
-    let n = target.dim();
     std::fs::create_dir_all(out_dir).map_err(|e| Error::io(out_dir, e))?;
     let abort = AtomicBool::new(false);
     let ctx = Ctx {
@@ -360,132 +320,191 @@ pub fn run(
         abort: &abort,
         progress,
     };
+    let mut chains = match resume {
+        Some(ck) => Chains::restore(ck, &ctx, out_dir)?,
+        None => Chains::start(&ctx, out_dir)?,
+    };
+    chains.save(&ctx, out_dir, false)?;
+    chains.run_segments(&ctx, out_dir)?;
+    chains.save(&ctx, out_dir, true)?;
+    Ok(chains.result(&ctx, out_dir))
+}
 
-    let (mut runners, mut counts_warmup, mut counts_sampling) = match resume {
-        Some(ck) => {
-            ck.check_matches(target, config)?;
-            let runners = ck
-                .chains
-                .iter()
-                .enumerate()
-                .map(|(c, cc)| Runner::restore(c, cc, n, out_dir))
-                .collect::<Result<Vec<_>>>()?;
-            (runners, ck.counts_warmup, ck.counts_sampling)
+/// All chains of a run and the evaluations spent so far, by phase.
+struct Chains {
+    runners: Vec<Runner>,
+    counts_warmup: EvalCounts,
+    counts_sampling: EvalCounts,
+}
+
+impl Chains {
+    /// New chains at their start points, in a folder that holds no checkpoint.
+    fn start(ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<Chains> {
+        let ck = checkpoint_path(out_dir);
+        if ck.exists() {
+            return Err(Error::Config(format!(
+                "{} holds the checkpoint of an earlier run: resume that run, or sample into an \
+                 empty folder",
+                out_dir.display()
+            )));
         }
-        None => {
-            let ck = checkpoint_path(out_dir);
-            if ck.exists() {
-                return Err(Error::Config(format!(
-                    "{} holds the checkpoint of an earlier run: resume that run, or sample into an \
-                     empty folder",
+        let before = ctx.target.counts();
+        let runners = (0..ctx.config.chains)
+            .into_par_iter()
+            .map(|c| Runner::start(c, ctx, out_dir))
+            .collect::<Result<Vec<_>>>()?;
+        Ok(Chains {
+            runners,
+            counts_warmup: ctx.target.counts().since(&before),
+            counts_sampling: EvalCounts::default(),
+        })
+    }
+
+    /// The chains of checkpoint `ck`, after checking that it belongs to this target and settings.
+    fn restore(ck: Checkpoint, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<Chains> {
+        ck.check_matches(ctx.target, ctx.config)?;
+        let n = ctx.target.dim();
+        let runners = ck
+            .chains
+            .iter()
+            .enumerate()
+            .map(|(c, cc)| Runner::restore(c, cc, n, out_dir))
+            .collect::<Result<Vec<_>>>()?;
+        Ok(Chains {
+            runners,
+            counts_warmup: ck.counts_warmup,
+            counts_sampling: ck.counts_sampling,
+        })
+    }
+
+    /// Syncs every draws file, then rewrites the checkpoint.
+    fn save(&mut self, ctx: &Ctx<'_, '_>, out_dir: &Path, complete: bool) -> Result<()> {
+        for r in self.runners.iter_mut() {
+            r.writer.sync()?;
+        }
+        let target = ctx.target;
+        Checkpoint {
+            crate_version: env!("CARGO_PKG_VERSION").to_string(),
+            problem: target.name().to_string(),
+            dim: target.dim(),
+            precond: target.precond().kind().to_string(),
+            target_fingerprint: target.fingerprint(),
+            config: ctx.config.clone(),
+            chains: self.runners.iter().map(Runner::save).collect(),
+            counts_warmup: self.counts_warmup,
+            counts_sampling: self.counts_sampling,
+            complete,
+        }
+        .save(out_dir)
+    }
+
+    /// Advances all chains segment by segment to the end of the run, saving after each segment. Stops
+    /// with the first chain's error or at an interrupt, after saving.
+    fn run_segments(&mut self, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<()> {
+        let config = ctx.config;
+        let total = config.iterations();
+        loop {
+            let lowest = self.lowest_iteration().unwrap_or(total);
+            if lowest >= total {
+                return Ok(());
+            }
+            let until = segment_end(lowest, config);
+            let outcomes = self.advance_all(until, ctx);
+            self.save(ctx, out_dir, false)?;
+            if let Some((c, Err(e))) = outcomes.into_iter().enumerate().find(|(_, o)| o.is_err()) {
+                return Err(chain_failed(c, self.runners[c].iteration, e, out_dir));
+            }
+            if ctx.interrupt.is_set() {
+                return Err(Error::Interrupted(format!(
+                    "sampling stopped at iteration {} of {total}; the state is saved in {} and the \
+                     run can be resumed from there",
+                    self.lowest_iteration().unwrap_or(0),
                     out_dir.display()
                 )));
             }
-            let before = target.counts();
-            let runners = (0..config.chains)
-                .into_par_iter()
-                .map(|c| Runner::start(c, &ctx, out_dir))
-                .collect::<Result<Vec<_>>>()?;
-            (
-                runners,
-                target.counts().since(&before),
-                EvalCounts::default(),
-            )
         }
-    };
+    }
 
-    let save =
-        |runners: &mut [Runner], w: &EvalCounts, s: &EvalCounts, complete: bool| -> Result<()> {
-            for r in runners.iter_mut() {
-                r.writer.sync()?;
-            }
-            Checkpoint {
-                crate_version: env!("CARGO_PKG_VERSION").to_string(),
-                problem: target.name().to_string(),
-                dim: n,
-                precond: target.precond().kind().to_string(),
-                target_fingerprint: target.fingerprint(),
-                config: config.clone(),
-                chains: runners.iter().map(Runner::save).collect(),
-                counts_warmup: *w,
-                counts_sampling: *s,
-                complete,
-            }
-            .save(out_dir)
-        };
-    save(&mut runners, &counts_warmup, &counts_sampling, false)?;
+    /// The fewest iterations any chain has done (`None` without chains).
+    fn lowest_iteration(&self) -> Option<u64> {
+        self.runners.iter().map(|r| r.iteration).min()
+    }
 
-    let total = config.iterations();
-    let every = config.checkpoint_every;
-    loop {
-        let lowest = runners.iter().map(|r| r.iteration).min().unwrap_or(total);
-        if lowest >= total {
-            break;
-        }
-        let mut until = (lowest / every + 1).saturating_mul(every).min(total);
-        if lowest < config.warmup {
-            until = until.min(config.warmup);
-        }
-        let before = target.counts();
-        let outcomes: Vec<Result<()>> = runners
+    /// Runs every chain in parallel up to iteration `until` and books the evaluations to the
+    /// segment's phase; returns each chain's outcome. A failing chain makes the others stop early.
+    fn advance_all(&mut self, until: u64, ctx: &Ctx<'_, '_>) -> Vec<Result<()>> {
+        let before = ctx.target.counts();
+        let outcomes: Vec<Result<()>> = self
+            .runners
             .par_iter_mut()
             .map(|r| {
-                let out = r.advance(until, &ctx);
+                let out = r.advance(until, ctx);
                 if out.is_err() {
-                    abort.store(true, Ordering::Relaxed);
+                    ctx.abort.store(true, Ordering::Relaxed);
                 }
                 out
             })
             .collect();
-        let spent = target.counts().since(&before);
-        if until <= config.warmup {
-            counts_warmup = counts_warmup.plus(&spent);
+        let spent = ctx.target.counts().since(&before);
+        if until <= ctx.config.warmup {
+            self.counts_warmup = self.counts_warmup.plus(&spent);
         } else {
-            counts_sampling = counts_sampling.plus(&spent);
+            self.counts_sampling = self.counts_sampling.plus(&spent);
         }
-        save(&mut runners, &counts_warmup, &counts_sampling, false)?;
-        if let Some((c, Err(e))) = outcomes.into_iter().enumerate().find(|(_, o)| o.is_err()) {
-            let iteration = runners[c].iteration;
-            let saved = format!(
-                "chain {c}, iteration {iteration} (the sampler state is saved in {}; the run can be \
-                 resumed once the cause is fixed)",
-                out_dir.display()
-            );
-            return Err(match e {
-                Error::Eval { context, source } => Error::Eval {
-                    context: format!("{context}, {saved}"),
-                    source,
-                },
-                other => other,
-            });
-        }
-        if interrupt.is_set() {
-            return Err(Error::Interrupted(format!(
-                "sampling stopped at iteration {} of {total}; the state is saved in {} and the run \
-                 can be resumed from there",
-                runners.iter().map(|r| r.iteration).min().unwrap_or(0),
-                out_dir.display()
-            )));
+        outcomes
+    }
+
+    /// The summaries and the pooled moments of the finished run.
+    fn result(&self, ctx: &Ctx<'_, '_>, out_dir: &Path) -> SampleResult {
+        let n = ctx.target.dim();
+        let spec = ctx.kernel.spec(n);
+        let has_step = spec.step_size.is_some();
+        let chains: Vec<ChainSummary> = self
+            .runners
+            .iter()
+            .map(|r| r.summary(has_step, out_dir))
+            .collect();
+        let pooled = self
+            .runners
+            .iter()
+            .fold(Welford::new(n), |acc, r| acc.merge(&r.moments));
+        SampleResult {
+            kernel: spec.name,
+            chains,
+            mean: pooled.mean().to_vec(),
+            variance: pooled.variance(),
+            draws: pooled.count(),
+            counts_warmup: self.counts_warmup,
+            counts_sampling: self.counts_sampling,
         }
     }
-    save(&mut runners, &counts_warmup, &counts_sampling, true)?;
+}
 
-    let spec = kernel.spec(n);
-    let has_step = spec.step_size.is_some();
-    let chains: Vec<ChainSummary> = runners
-        .iter()
-        .map(|r| r.summary(has_step, out_dir))
-        .collect();
-    let pooled = runners
-        .iter()
-        .fold(Welford::new(n), |acc, r| acc.merge(&r.moments));
-    Ok(SampleResult {
-        kernel: spec.name,
-        chains,
-        mean: pooled.mean().to_vec(),
-        variance: pooled.variance(),
-        draws: pooled.count(),
-        counts_warmup,
-        counts_sampling,
-    })
+/// The end of the segment that starts at iteration `lowest`: the next multiple of the checkpoint
+/// interval, the end of the warm-up, or the end of the run, whichever comes first.
+fn segment_end(lowest: u64, config: &SampleConfig) -> u64 {
+    let every = config.checkpoint_every;
+    let mut until = (lowest / every + 1)
+        .saturating_mul(every)
+        .min(config.iterations());
+    if lowest < config.warmup {
+        until = until.min(config.warmup);
+    }
+    until
+}
+
+/// The error of chain `c` that stopped the run at `iteration`, saying that the state is saved.
+fn chain_failed(c: usize, iteration: u64, e: Error, out_dir: &Path) -> Error {
+    let saved = format!(
+        "chain {c}, iteration {iteration} (the sampler state is saved in {}; the run can be \
+         resumed once the cause is fixed)",
+        out_dir.display()
+    );
+    match e {
+        Error::Eval { context, source } => Error::Eval {
+            context: format!("{context}, {saved}"),
+            source,
+        },
+        other => other,
+    }
 }

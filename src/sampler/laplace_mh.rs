@@ -16,9 +16,10 @@
 use rand_distr::{ChiSquared, Distribution};
 
 use super::{
-    dot, mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, Target,
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, Target,
 };
 use crate::error::{Error, Result};
+use crate::util::vector::dot;
 
 /// The proposal of [`LaplaceMh`].
 #[derive(Debug, Clone, Copy)]

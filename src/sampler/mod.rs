@@ -7,7 +7,7 @@
 //!   [`mala`], [`hmc`] (with [`integrator`]), [`laplace_mh`];
 //! - [`chain`]: running the chains in parallel, with warm-up, streaming and checkpoints
 //!   ([`run`]); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
-//!   [`checkpoint`].
+//!   [`checkpoint`] and [`state`] (what a checkpoint saves of one chain).
 //!
 //! # Example
 //!
@@ -45,6 +45,7 @@ pub mod importance;
 pub mod integrator;
 pub mod laplace_mh;
 pub mod mala;
+pub mod state;
 pub mod target;
 pub mod welford;
 
@@ -206,9 +207,4 @@ pub(crate) fn mh_decide(rng: &mut ChainRng, log_ratio: f64) -> (f64, bool) {
 pub(crate) fn standard_normal(rng: &mut ChainRng, n: usize) -> Vec<f64> {
     use rand_distr::{Distribution, StandardNormal};
     (0..n).map(|_| StandardNormal.sample(rng)).collect()
-}
-
-/// Σ aᵢ bᵢ.
-pub(crate) fn dot(a: &[f64], b: &[f64]) -> f64 {
-    a.iter().zip(b).map(|(x, y)| x * y).sum()
 }

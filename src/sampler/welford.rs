@@ -3,6 +3,8 @@
 //! by the pairwise formula of Chan, Golub & LeVeque 1979 ("Updating formulae and a pairwise algorithm
 //! for computing sample variances").
 
+use crate::util::moments::welford_push;
+
 /// Count, mean and sum of squared deviations M2 of the vectors seen so far.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Welford {
@@ -24,12 +26,7 @@ impl Welford {
     /// Adds one vector.
     pub fn push(&mut self, x: &[f64]) {
         self.n += 1;
-        let k = self.n as f64;
-        for ((m, s), xi) in self.mean.iter_mut().zip(self.m2.iter_mut()).zip(x) {
-            let d = xi - *m;
-            *m += d / k;
-            *s += d * (xi - *m);
-        }
+        welford_push(self.n, &mut self.mean, &mut self.m2, x);
     }
 
     /// The union of two accumulators.
@@ -50,6 +47,20 @@ impl Welford {
             out.m2[i] = self.m2[i] + other.m2[i] + d * d * na * nb / n;
         }
         out
+    }
+
+    /// Checks an accumulator read from a file: vectors of length `dim` and finite numbers; the message
+    /// names the first bad field.
+    pub fn check(&self, dim: usize) -> Result<(), String> {
+        for (name, v) in [("mean", &self.mean), ("m2", &self.m2)] {
+            if v.len() != dim {
+                return Err(format!("{name} has {} entries, expected {dim}", v.len()));
+            }
+            if let Some(i) = v.iter().position(|x| !x.is_finite()) {
+                return Err(format!("{name}[{i}] is {}, not a finite number", v[i]));
+            }
+        }
+        Ok(())
     }
 
     /// Number of vectors.

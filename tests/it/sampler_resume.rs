@@ -417,3 +417,189 @@ fn sigint_saves_state_and_resume_is_bit_identical() {
     std::fs::remove_dir_all(&ref_dir).unwrap();
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The settings of the checkpoint fixtures in tests/it/fixtures/: a run of the 3-dimensional Gaussian
+/// with two HMC chains and a refined metric, stopped while sampling.
+fn fixture_cfg() -> SampleConfig {
+    SampleConfig {
+        kernel: KernelKind::Hmc,
+        chains: 2,
+        warmup: 60,
+        draws: 40,
+        checkpoint_every: 20,
+        adapt_metric: true,
+        seed: 11,
+        ..Default::default()
+    }
+}
+
+/// Not a test by itself: writes a fixture of the current checkpoint format into the folder named by
+/// `VARPOST_FIXTURE_OUT` (a run interrupted at iteration 75 of chain 0). Run it before changing the
+/// format, and commit the folder as tests/it/fixtures/checkpoint-v<version>/.
+#[test]
+#[ignore]
+fn write_checkpoint_fixture() {
+    let Ok(out) = std::env::var("VARPOST_FIXTURE_OUT") else {
+        return;
+    };
+    let dir = PathBuf::from(out);
+    let it = Interrupt::new();
+    let e = run_gauss_with(
+        Gaussian::correlated(3),
+        &fixture_cfg(),
+        &dir,
+        false,
+        &it,
+        &stop_at(&it, 0, 75),
+    )
+    .unwrap_err();
+    assert!(matches!(e, Error::Interrupted(_)), "{e}");
+}
+
+/// The checkpoint fixture of format version 1 (see tests/it/fixtures/README.md), copied into a fresh
+/// folder `name`.
+fn fixture_v1(name: &str) -> PathBuf {
+    let src = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/it/fixtures/checkpoint-v1");
+    let dir = temp_dir(name);
+    for f in ["checkpoint.vpck", "chain-0.draws", "chain-1.draws"] {
+        std::fs::copy(src.join(f), dir.join(f)).unwrap();
+    }
+    dir
+}
+
+/// A checkpoint of format version 1, written by varpost 0.1.0 before the format had a reader per
+/// version, still loads, and resuming it gives the folder of the uninterrupted run byte for byte.
+/// (Should the sampler's numbers ever be changed on purpose, the last comparison no longer holds and
+/// the fixture must be rewritten with `write_checkpoint_fixture`.)
+#[test]
+fn checkpoint_format_v1_fixture_loads_and_resumes() {
+    let dir = fixture_v1("fixture-v1");
+    let ck = Checkpoint::load(&dir).unwrap();
+    assert_eq!((ck.dim, ck.chains.len(), ck.complete), (3, 2, false));
+    let at: Vec<(u64, u64)> = ck.chains.iter().map(|c| (c.iteration, c.records)).collect();
+    assert_eq!(at, vec![(75, 15), (60, 0)]);
+    run_gauss(
+        Gaussian::correlated(3),
+        &fixture_cfg(),
+        &dir,
+        true,
+        &Interrupt::new(),
+    )
+    .unwrap();
+    let (ref_dir, _) = reference_run_of("fixture-v1-ref", Gaussian::correlated(3), &fixture_cfg());
+    assert_eq!(
+        files(&ref_dir),
+        files(&dir),
+        "the resumed version-1 checkpoint continues differently from an uninterrupted run"
+    );
+    std::fs::remove_dir_all(&ref_dir).unwrap();
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The uninterrupted run of `g` with settings `cfg`, in a fresh folder `name`.
+fn reference_run_of(name: &str, g: Gaussian, cfg: &SampleConfig) -> (PathBuf, SampleResult) {
+    let dir = temp_dir(name);
+    let r = run_gauss(g, cfg, &dir, false, &Interrupt::new()).unwrap();
+    (dir, r)
+}
+
+/// Writes `payload` as the checkpoint of `dir` with a correct checksum (as a careful hand edit would).
+fn write_with_checksum(dir: &Path, payload: &serde_json::Value) {
+    let body = serde_json::to_vec(payload).unwrap();
+    let mut h = varpost::hash::Fnv64::new();
+    h.write(&body);
+    let mut bytes = format!("varpost-checkpoint 1 fnv1a64={:016x}\n", h.finish()).into_bytes();
+    bytes.extend_from_slice(&body);
+    std::fs::write(checkpoint_path(dir), bytes).unwrap();
+}
+
+/// Well-formed checkpoints with a correct checksum but inconsistent content are refused with an error
+/// that names the field, never a panic and never a resumed run.
+#[test]
+fn edited_checkpoints_are_refused_naming_the_field() {
+    type Edit = fn(&mut serde_json::Value);
+    let cases: [(&str, Edit, &str); 10] = [
+        (
+            "moments short",
+            |v| {
+                v["chains"][0]["moments"]["mean"].as_array_mut().unwrap().pop();
+            },
+            "chains[0].moments: mean has 2 entries, expected 3",
+        ),
+        (
+            "negative step",
+            |v| v["chains"][0]["step_size"] = (-0.5).into(),
+            "chains[0].step_size is -0.5",
+        ),
+        (
+            "huge iteration",
+            |v| v["chains"][0]["iteration"] = u64::MAX.into(),
+            "chains[0].iteration is 18446744073709551615",
+        ),
+        (
+            "state too long",
+            |v| v["chains"][1]["state"]["u"].as_array_mut().unwrap().push(0.5.into()),
+            "chains[1].state.u has 4 entries, expected 3",
+        ),
+        (
+            "gradient short",
+            |v| {
+                v["chains"][0]["state"]["grad"].as_array_mut().unwrap().pop();
+            },
+            "chains[0].state.grad has 2 entries",
+        ),
+        (
+            "metric short",
+            |v| {
+                v["chains"][0]["warmup"]["metric"].as_array_mut().unwrap().pop();
+            },
+            "chains[0].warmup: metric has 2 entries",
+        ),
+        (
+            "records",
+            |v| v["chains"][0]["records"] = 14.into(),
+            "chains[0].records is 14",
+        ),
+        (
+            "one chain missing",
+            |v| {
+                v["chains"].as_array_mut().unwrap().pop();
+            },
+            "chains: the file holds 1 chains",
+        ),
+        (
+            "step size overflows",
+            |v| v["chains"][0]["warmup"]["controller"]["log_eps_bar"] = 1e300.into(),
+            "chains[0].warmup: controller: step sizes",
+        ),
+        (
+            "no number",
+            |v| v["chains"][0]["step_size"] = serde_json::Value::Null,
+            "content is invalid",
+        ),
+    ];
+    let dir = fixture_v1("edited");
+    let text = std::fs::read(checkpoint_path(&dir)).unwrap();
+    let nl = text.iter().position(|&b| b == b'\n').unwrap();
+    let original: serde_json::Value = serde_json::from_slice(&text[nl + 1..]).unwrap();
+    for (what, edit, expected) in cases {
+        let mut v = original.clone();
+        edit(&mut v);
+        write_with_checksum(&dir, &v);
+        let e = Checkpoint::load(&dir).unwrap_err();
+        let msg = e.to_string();
+        assert!(matches!(e, Error::Format { .. }), "{what}: {msg}");
+        assert!(msg.contains(expected), "{what}: {msg}");
+        assert!(
+            msg.contains("start a new run") || msg.contains("invalid"),
+            "{what}: {msg}"
+        );
+        // Nor does a resume get past it.
+        let r = run_gauss(Gaussian::correlated(3), &fixture_cfg(), &dir, true, &Interrupt::new());
+        assert!(r.is_err(), "{what}: resumed");
+    }
+    // The unedited content re-encoded loads again.
+    write_with_checksum(&dir, &original);
+    Checkpoint::load(&dir).unwrap();
+    std::fs::remove_dir_all(&dir).unwrap();
+}
