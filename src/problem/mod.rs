@@ -12,6 +12,7 @@ pub mod circulant;
 pub mod counted;
 pub mod linear_gaussian;
 pub mod lorenz96;
+pub mod memory;
 pub mod prior;
 pub mod replay;
 pub mod settings;
