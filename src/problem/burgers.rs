@@ -36,6 +36,7 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 use rustfft::num_complex::Complex;
 
+use super::batch::parallel_costs;
 use super::circulant::{periodised_column, soar, CirculantPrior};
 use super::lorenz96::{normal_draws, Observation, SynthMode};
 use super::memory::{concurrent_evaluations, MemoryPlan, VEC_HEADER};
@@ -793,6 +794,9 @@ impl Problem for Burgers {
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
         Ok(Some(self.evaluate(x, None)?))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)

@@ -13,10 +13,11 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
+use super::batch::parallel_costs;
 use super::memory::{concurrent_evaluations, MemoryPlan};
 use super::prior::{DiagonalPrior, Prior};
 use super::settings::{in_range, scale, Settings};
-use super::{CostSplit, Problem};
+use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
 /// Settings of the linear-Gaussian problem.
@@ -272,7 +273,8 @@ impl LinearGaussian {
         self.c.tr_mul(&self.a.tr_mul(v))
     }
 
-    fn split(&self, x: &[f64]) -> (CostSplit, DVector<f64>) {
+    fn split(&self, x: &[f64]) -> std::result::Result<(CostSplit, DVector<f64>), EvalError> {
+        check_len("the control vector", x, self.config.n)?;
         let b = self.prior.variance();
         let xb = self.prior.mean();
         let jb = 0.5
@@ -285,13 +287,13 @@ impl LinearGaussian {
             * (0..self.y.len())
                 .map(|j| (self.y[j] - gx[j]) * wd[j])
                 .sum::<f64>();
-        (
+        Ok((
             CostSplit {
                 background: jb,
                 observation: jo,
             },
             wd,
-        )
+        ))
     }
 
     /// The closed-form posterior mean and variances, through the rank-r Woodbury form.
@@ -333,7 +335,8 @@ impl Problem for LinearGaussian {
         self.config.n
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
-        let (s, wd) = self.split(x);
+        check_len("the gradient buffer", grad, self.config.n)?;
+        let (s, wd) = self.split(x)?;
         let b = self.prior.variance();
         let xb = self.prior.mean();
         let gtw = self.adjoint(&wd);
@@ -343,7 +346,7 @@ impl Problem for LinearGaussian {
         Ok(s.background + s.observation)
     }
     fn cost(&self, x: &[f64]) -> std::result::Result<f64, EvalError> {
-        let (s, _) = self.split(x);
+        let (s, _) = self.split(x)?;
         Ok(s.background + s.observation)
     }
     fn has_hess_vec(&self) -> bool {
@@ -355,6 +358,8 @@ impl Problem for LinearGaussian {
         v: &[f64],
         out: &mut [f64],
     ) -> std::result::Result<(), EvalError> {
+        check_len("the direction", v, self.config.n)?;
+        check_len("the product buffer", out, self.config.n)?;
         let b = self.prior.std();
         let gv = self.forward(v);
         let w = DVector::from_fn(gv.len(), |j, _| gv[j] * self.r_inv[j]);
@@ -365,7 +370,10 @@ impl Problem for LinearGaussian {
         Ok(())
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
-        Ok(Some(self.split(x).0))
+        Ok(Some(self.split(x)?.0))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)

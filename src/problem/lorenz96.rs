@@ -18,11 +18,12 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
+use super::batch::parallel_costs;
 use super::circulant::soar;
 use super::memory::{concurrent_evaluations, MemoryPlan, VEC_HEADER};
 use super::prior::{DensePrior, Prior};
 use super::settings::{in_range, observation_schedule, positive, scale, Settings};
-use super::{CostSplit, Problem};
+use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
 /// The Lorenz-96 model with an RK4 step, its tangent-linear and its adjoint.
@@ -791,10 +792,18 @@ impl Lorenz96 {
         &self.prior
     }
 
-    fn split(&self, x: &[f64], grad: Option<&mut [f64]>) -> CostSplit {
+    fn split(
+        &self,
+        x: &[f64],
+        grad: Option<&mut [f64]>,
+    ) -> std::result::Result<CostSplit, EvalError> {
         let model = self.scenario.config.model;
         let op = self.scenario.config.obs_op;
         let n = model.n;
+        check_len("the control vector", x, n)?;
+        if let Some(g) = &grad {
+            check_len("the gradient buffer", g, n)?;
+        }
         let dxb: Vec<f64> = x
             .iter()
             .zip(self.prior.mean())
@@ -827,10 +836,10 @@ impl Lorenz96 {
                 g[i] = binv_d[i] + a[i];
             }
         }
-        CostSplit {
+        Ok(CostSplit {
             background: jb,
             observation: jo,
-        }
+        })
     }
 }
 
@@ -842,15 +851,18 @@ impl Problem for Lorenz96 {
         Some((0..self.dim()).map(|i| format!("x{i}")).collect())
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
-        let s = self.split(x, Some(grad));
+        let s = self.split(x, Some(grad))?;
         Ok(s.background + s.observation)
     }
     fn cost(&self, x: &[f64]) -> std::result::Result<f64, EvalError> {
-        let s = self.split(x, None);
+        let s = self.split(x, None)?;
         Ok(s.background + s.observation)
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
-        Ok(Some(self.split(x, None)))
+        Ok(Some(self.split(x, None)?))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)
