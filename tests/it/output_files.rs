@@ -681,3 +681,73 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
         "{e}"
     );
 }
+
+/// Set for the child process of [`lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed`]:
+/// the folder [`lock_holder_child`] locks.
+const LOCK_CHILD_DIR: &str = "VARPOST_TEST_LOCK_CHILD_DIR";
+
+/// Not a test of its own: run in a child process by the test below, it takes the lock, says so on
+/// stdout and holds it until its stdin closes or it is killed.
+#[test]
+#[ignore = "run as a child process by lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed"]
+fn lock_holder_child() {
+    use std::io::{BufRead, Write};
+    let Ok(dir) = std::env::var(LOCK_CHILD_DIR) else {
+        return;
+    };
+    let lock =
+        varpost::output::lock::RunLock::acquire(Path::new(&dir), "varpost sample --out child")
+            .expect("the child takes the lock");
+    println!("locked");
+    std::io::stdout().flush().unwrap();
+    let mut line = String::new();
+    let _ = std::io::stdin().lock().read_line(&mut line);
+    drop(lock);
+}
+
+#[test]
+fn lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed() {
+    use std::io::{BufRead, BufReader};
+    use std::process::Stdio;
+    use varpost::output::lock::{RunLock, LOCK_FILE};
+    let dir = common::temp_dir("lock-child");
+    let mut child = Command::new(std::env::current_exe().unwrap())
+        .args([
+            "output_files::lock_holder_child",
+            "--exact",
+            "--ignored",
+            "--nocapture",
+            "--test-threads=1",
+        ])
+        .env(LOCK_CHILD_DIR, &dir)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let pid = child.id();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    assert!(
+        lines.any(|l| l.is_ok_and(|l| l.trim_end().ends_with("locked"))),
+        "the child process did not take the lock"
+    );
+    let e = RunLock::acquire(&dir, "varpost map --out x")
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains(&format!("process {pid} ")), "{e}");
+    assert!(
+        e.contains("`varpost sample --out child`") && e.contains("kill"),
+        "{e}"
+    );
+    // Killed: the kernel drops its flock, but its lock file stays behind with its details.
+    child.kill().unwrap();
+    child.wait().unwrap();
+    assert!(dir.join(LOCK_FILE).exists());
+    let lock = RunLock::acquire(&dir, "varpost resume x").unwrap();
+    let previous = lock.taken_over().expect("the stale lock is reported");
+    assert_eq!(previous.pid, Some(pid));
+    assert_eq!(previous.command, "varpost sample --out child");
+    assert!(lock.takeover_note().unwrap().contains("no longer running"));
+    drop(lock);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
