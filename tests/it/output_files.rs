@@ -262,6 +262,32 @@ fn ensemble_without_optional_fields_and_with_no_members() {
     assert_eq!(f64s(&got["scipy"]["vars"]["analysis"]["data"]), analysis);
 }
 
+#[test]
+fn ensemble_names_with_nul_and_huge_names_read_back_whole() {
+    // Read back by Python netCDF4 and scipy.io.netcdf_file; the storage rule (NUL written as \0, names
+    // cut to MAX_NAME_BYTES ending in "...") is this project's, stated in the comment attribute.
+    use varpost::output::ensemble::MAX_NAME_BYTES;
+    let dir = common::temp_dir("ensemble-names");
+    let names: Vec<String> = vec!["T\0lev2".into(), "x".repeat(5_000_000), "q".into()];
+    let analysis = vec![1.0, 2.0, 3.0];
+    let info = EnsembleInfo {
+        analysis: &analysis,
+        names: Some(&names),
+        ..Default::default()
+    };
+    let path = write_ensemble(&dir, &info, 0, std::iter::empty()).unwrap();
+    assert!(std::fs::metadata(&path).unwrap().len() < 10_000);
+    let got = run_python(NC_READER, &[&path]);
+    let cut = format!("{}...", "x".repeat(MAX_NAME_BYTES - 3));
+    for r in [&got["netCDF4"], &got["scipy"]] {
+        let v = &r["vars"]["component_name"];
+        assert_eq!(strs(&v["data"]), ["T\\0lev2", cut.as_str(), "q"]);
+        let comment = v["attrs"]["comment"].as_str().unwrap();
+        assert!(comment.contains("NUL") && comment.contains("components.csv"), "{comment}");
+    }
+    assert_eq!(got["netCDF4"]["dims"]["name_strlen"], MAX_NAME_BYTES);
+}
+
 /// Files left in a folder, temporary ones included.
 fn listing(dir: &Path) -> Vec<String> {
     let mut v: Vec<String> = std::fs::read_dir(dir)
@@ -589,7 +615,7 @@ print(json.dumps({"src": p.src, "href": p.href, "rows": p.rows, "text": "".join(
 fn components_csv_parses_with_the_expected_header() {
     let dir = common::temp_dir("components-csv");
     let n = 4;
-    let names: Vec<String> = ["x0", "T(lev=2,lat=10)", "say \"hi\"", "q"]
+    let names: Vec<String> = ["x0", "T(lev=2,lat=10)", "say \"hi\"", "=SUM(A1:A2)"]
         .iter()
         .map(|s| s.to_string())
         .collect();
@@ -651,7 +677,11 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
         "component,name,analysis,background_std,laplace_std,posterior_mean,posterior_std,mcse_mean,\
          ess_bulk,ess_tail,rhat"
     );
-    assert_eq!(strs(&got["names"]), names);
+    // A name a spreadsheet would evaluate comes back as text with a leading single quote (OWASP,
+    // "CSV Injection").
+    let mut shown = names.clone();
+    shown[3] = "'=SUM(A1:A2)".into();
+    assert_eq!(strs(&got["names"]), shown);
     assert_eq!(got["component"], serde_json::json!([0, 1, 2, 3]));
     for (h, want) in [
         ("analysis", &a),
