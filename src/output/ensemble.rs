@@ -72,7 +72,8 @@ impl StoredNames {
     fn comment(&self) -> Option<String> {
         let mut notes = Vec::new();
         if self.escaped_nul {
-            notes.push("NUL characters in names are written as the two characters \\0.".to_string());
+            notes
+                .push("NUL characters in names are written as the two characters \\0.".to_string());
         }
         if self.cut {
             notes.push(format!(
@@ -492,7 +493,10 @@ mod tests {
     #[test]
     fn names_are_stored_whole_escaped_and_cut_to_the_limit() {
         // Storage rule of this module (no outside source): NUL as \0, at most MAX_NAME_BYTES bytes.
-        assert_eq!(stored_name("T(lev=2)"), (b"T(lev=2)".to_vec(), false, false));
+        assert_eq!(
+            stored_name("T(lev=2)"),
+            (b"T(lev=2)".to_vec(), false, false)
+        );
         assert_eq!(stored_name("a\0b"), (b"a\\0b".to_vec(), true, false));
         let (b, _, cut) = stored_name(&"x".repeat(5_000_000));
         assert!(cut && b.len() == MAX_NAME_BYTES && b.ends_with(b"..."));

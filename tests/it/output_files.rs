@@ -283,7 +283,10 @@ fn ensemble_names_with_nul_and_huge_names_read_back_whole() {
         let v = &r["vars"]["component_name"];
         assert_eq!(strs(&v["data"]), ["T\\0lev2", cut.as_str(), "q"]);
         let comment = v["attrs"]["comment"].as_str().unwrap();
-        assert!(comment.contains("NUL") && comment.contains("components.csv"), "{comment}");
+        assert!(
+            comment.contains("NUL") && comment.contains("components.csv"),
+            "{comment}"
+        );
     }
     assert_eq!(got["netCDF4"]["dims"]["name_strlen"], MAX_NAME_BYTES);
 }
@@ -501,6 +504,34 @@ fn plots_survive_non_finite_and_empty_input() {
     check_png(&dir.join("a.png"), size);
     let e = std_plot(&dir.join("s.png"), &[1.0, 2.0], Some(&[1.0]), None).unwrap_err();
     assert!(e.to_string().contains("1 values for 2 components"), "{e}");
+}
+
+#[test]
+fn plots_of_a_five_megabyte_name_draw_a_shortened_label() {
+    // Display rule of this project, no outside source: labels are cut to MAX_LABEL_CHARS (90) and
+    // MAX_MARGINAL_LABEL_CHARS (40) characters around an ellipsis, so the text layout stays small.
+    use varpost::output::plots::{fit_label, MAX_LABEL_CHARS};
+    let dir = common::temp_dir("plots-long-name");
+    let label = format!("{} (R-hat 1.21, bulk ESS 38)", "v".repeat(5 << 20));
+    let chains = ar1_chains(2, 200, 0.5, 0.0, 4);
+    let s = [ChainSeries {
+        label: &label,
+        chains: &chains,
+    }];
+    let size = trace_plot(&dir.join("t.png"), &s).unwrap();
+    check_png(&dir.join("t.png"), size);
+    let m = [Marginal {
+        series: s[0],
+        analysis: 0.0,
+        laplace_std: Some(1.0),
+    }];
+    let size = marginal_plot(&dir.join("m.png"), &m).unwrap();
+    check_png(&dir.join("m.png"), size);
+    let shown = fit_label(&label, MAX_LABEL_CHARS);
+    assert!(
+        shown.len() < 400 && shown.ends_with("bulk ESS 38)"),
+        "{shown}"
+    );
 }
 
 #[test]
