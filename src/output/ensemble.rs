@@ -14,6 +14,12 @@
 //! ```
 //! The netcdf3 crate fixes the number of records when the header is written, so the member count is
 //! taken up front and the members are streamed from an iterator, one at a time.
+//!
+//! Component names are stored so that every reader sees them whole: a NUL (which C readers take for the
+//! end of a string) is written as the two characters `\0`, and a name longer than [`MAX_NAME_BYTES`]
+//! is cut (at a character boundary) and ends in `...`, so that one huge name cannot blow the
+//! (component × name_strlen) table up. Either change is stated in the variable's `comment` attribute;
+//! the full names are in components.csv.
 
 use std::cell::RefCell;
 use std::fs::File;
@@ -29,6 +35,76 @@ use crate::error::{Error, Result};
 
 /// The file name inside the output folder.
 pub const FILE_NAME: &str = "ensemble.nc";
+
+/// Longest component name stored, in bytes (UTF-8); longer names are cut and end in `...`.
+pub const MAX_NAME_BYTES: usize = 256;
+
+/// The component names as stored in the file, and what had to be changed to store them.
+#[derive(Debug, Clone, PartialEq)]
+struct StoredNames {
+    bytes: Vec<Vec<u8>>,
+    escaped_nul: bool,
+    cut: bool,
+}
+
+impl StoredNames {
+    fn new(names: &[String]) -> Self {
+        let mut stored = StoredNames {
+            bytes: Vec::with_capacity(names.len()),
+            escaped_nul: false,
+            cut: false,
+        };
+        for name in names {
+            let (b, escaped, cut) = stored_name(name);
+            stored.escaped_nul |= escaped;
+            stored.cut |= cut;
+            stored.bytes.push(b);
+        }
+        stored
+    }
+
+    /// The longest stored name, at least 1 (a NetCDF dimension cannot be empty).
+    fn strlen(&self) -> usize {
+        self.bytes.iter().map(Vec::len).max().unwrap_or(0).max(1)
+    }
+
+    /// The `comment` attribute of `component_name`: what was changed, if anything.
+    fn comment(&self) -> Option<String> {
+        let mut notes = Vec::new();
+        if self.escaped_nul {
+            notes
+                .push("NUL characters in names are written as the two characters \\0.".to_string());
+        }
+        if self.cut {
+            notes.push(format!(
+                "Names longer than {MAX_NAME_BYTES} bytes are cut and end in \"...\"; the full names \
+                 are in components.csv."
+            ));
+        }
+        Some(notes.join(" ")).filter(|c| !c.is_empty())
+    }
+}
+
+/// One name as stored: NUL written as `\0`, cut to [`MAX_NAME_BYTES`] at a character boundary with a
+/// trailing `...`; with whether a NUL was escaped and whether the name was cut.
+fn stored_name(name: &str) -> (Vec<u8>, bool, bool) {
+    let escaped = name.contains('\0');
+    let text = if escaped {
+        std::borrow::Cow::Owned(name.replace('\0', "\\0"))
+    } else {
+        std::borrow::Cow::Borrowed(name)
+    };
+    if text.len() <= MAX_NAME_BYTES {
+        return (text.as_bytes().to_vec(), escaped, false);
+    }
+    let mut end = MAX_NAME_BYTES - 3;
+    while !text.is_char_boundary(end) {
+        end -= 1;
+    }
+    let mut b = text.as_bytes()[..end].to_vec();
+    b.extend_from_slice(b"...");
+    (b, escaped, true)
+}
 
 /// One ensemble member: a draw of the control vector and where it comes from.
 #[derive(Debug, Clone, PartialEq)]
@@ -154,7 +230,8 @@ where
             )));
         }
     }
-    let data_set = define(info, n, n_members).map_err(|e| {
+    let names = info.names.map(StoredNames::new);
+    let data_set = define(info, names.as_ref(), n, n_members).map_err(|e| {
         Error::Config(format!(
             "cannot define the layout of {}: {e}",
             path.display()
@@ -162,7 +239,7 @@ where
     })?;
 
     let tmp = temp_sibling(&path)?;
-    let result = write_file(&tmp, &data_set, info, n_members, members);
+    let result = write_file(&tmp, &data_set, info, names.as_ref(), n_members, members);
     match result {
         Ok(()) => commit(&tmp, &path).map(|()| path),
         Err(e) => {
@@ -175,6 +252,7 @@ where
 /// The header: dimensions, variables and attributes.
 fn define(
     info: &EnsembleInfo<'_>,
+    names: Option<&StoredNames>,
     n: usize,
     n_members: usize,
 ) -> std::result::Result<DataSet, netcdf3::InvalidDataSet> {
@@ -229,11 +307,13 @@ fn define(
             ds.add_var_attr_string(name, "units", u)?;
         }
     }
-    if let Some(names) = info.names {
-        let strlen = names.iter().map(|s| s.len()).max().unwrap_or(0).max(1);
-        ds.add_fixed_dim("name_strlen", strlen)?;
+    if let Some(names) = names {
+        ds.add_fixed_dim("name_strlen", names.strlen())?;
         ds.add_var_u8("component_name", &["component", "name_strlen"])?;
         ds.add_var_attr_string("component_name", "long_name", "name of the component")?;
+        if let Some(c) = names.comment() {
+            ds.add_var_attr_string("component_name", "comment", c)?;
+        }
     }
     Ok(ds)
 }
@@ -288,6 +368,7 @@ fn write_file<I>(
     tmp: &Path,
     ds: &DataSet,
     info: &EnsembleInfo<'_>,
+    names: Option<&StoredNames>,
     n_members: usize,
     members: I,
 ) -> Result<()>
@@ -322,11 +403,11 @@ where
     for (name, _, _, data) in component_vectors(info) {
         w.write_var_f64(name, data).map_err(nc)?;
     }
-    if let Some(names) = info.names {
-        let strlen = ds.dim_size("name_strlen").unwrap_or(1);
+    if let Some(names) = names {
+        let strlen = names.strlen();
         let mut chars = vec![0u8; n * strlen];
-        for (i, s) in names.iter().enumerate() {
-            chars[i * strlen..i * strlen + s.len()].copy_from_slice(s.as_bytes());
+        for (i, s) in names.bytes.iter().enumerate() {
+            chars[i * strlen..i * strlen + s.len()].copy_from_slice(s);
         }
         w.write_var_u8("component_name", &chars).map_err(nc)?;
     }
@@ -408,6 +489,27 @@ where
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn names_are_stored_whole_escaped_and_cut_to_the_limit() {
+        // Storage rule of this module (no outside source): NUL as \0, at most MAX_NAME_BYTES bytes.
+        assert_eq!(
+            stored_name("T(lev=2)"),
+            (b"T(lev=2)".to_vec(), false, false)
+        );
+        assert_eq!(stored_name("a\0b"), (b"a\\0b".to_vec(), true, false));
+        let (b, _, cut) = stored_name(&"x".repeat(5_000_000));
+        assert!(cut && b.len() == MAX_NAME_BYTES && b.ends_with(b"..."));
+        // A cut never splits a character: 2-byte characters up to the limit stay valid UTF-8.
+        let (b, _, cut) = stored_name(&"é".repeat(MAX_NAME_BYTES));
+        assert!(cut && b.len() <= MAX_NAME_BYTES);
+        assert!(std::str::from_utf8(&b).unwrap().ends_with("é..."));
+        let names = StoredNames::new(&["a\0".to_string(), "b".repeat(300)]);
+        assert_eq!(names.strlen(), MAX_NAME_BYTES);
+        let c = names.comment().unwrap();
+        assert!(c.contains("\\0") && c.contains("components.csv"), "{c}");
+        assert_eq!(StoredNames::new(&["a".into()]).comment(), None);
+    }
 
     #[test]
     fn squared_units_keep_udunits_syntax() {

@@ -2,6 +2,7 @@
 
 pub mod ensemble;
 pub mod html;
+pub mod lock;
 pub mod plots;
 pub mod progress;
 pub mod summary;

@@ -33,6 +33,10 @@ pub const MARGINAL_PANEL: (u32, u32) = (WIDTH / 3, 320);
 pub const STD_SIZE: (u32, u32) = (WIDTH, 550);
 /// Most points drawn per line; longer chains are thinned evenly for the picture only.
 const MAX_POINTS: usize = 4000;
+/// Most characters of a label over a full-width panel (trace and autocorrelation pictures).
+pub const MAX_LABEL_CHARS: usize = 90;
+/// Most characters of a label over a marginal panel (a third of the width).
+pub const MAX_MARGINAL_LABEL_CHARS: usize = 40;
 
 /// A colour-blind-safe palette for chains (Okabe & Ito 2008, "Color Universal Design"), with yellow last
 /// as it is faint on white.
@@ -281,6 +285,28 @@ fn draw_axes(
     mesh.draw().map_err(msg)
 }
 
+/// A label as drawn: control characters shown as spaces, and at most `max` characters. A longer label
+/// keeps its beginning (two thirds) and its end (one third) around an ellipsis, so that both a long
+/// component name and the statistics a caller appends to it stay readable; the text layout then costs
+/// the same for a five-megabyte name as for a short one.
+pub fn fit_label(label: &str, max: usize) -> String {
+    let clean = |c: char| if c.is_control() { ' ' } else { c };
+    let count = label.chars().count();
+    if count <= max {
+        return label.chars().map(clean).collect();
+    }
+    let keep = max.saturating_sub(1);
+    let head = keep * 2 / 3;
+    let tail = keep - head;
+    label
+        .chars()
+        .take(head)
+        .chain(std::iter::once('…'))
+        .chain(label.chars().skip(count - tail))
+        .map(clean)
+        .collect()
+}
+
 /// A panel's caption: its label, and which chains (if any) have no finite value to draw, so they are
 /// not silently missing from the picture.
 fn panel_caption(series: &ChainSeries<'_>) -> String {
@@ -291,14 +317,11 @@ fn panel_caption(series: &ChainSeries<'_>) -> String {
         .filter(|(_, c)| !c.iter().any(|v| v.is_finite()))
         .map(|(i, _)| i.to_string())
         .collect();
+    let label = fit_label(series.label, MAX_LABEL_CHARS);
     match empty.len() {
-        0 => series.label.to_string(),
-        1 => format!("{} (chain {}: no finite values)", series.label, empty[0]),
-        _ => format!(
-            "{} (chains {}: no finite values)",
-            series.label,
-            empty.join(", ")
-        ),
+        0 => label,
+        1 => format!("{label} (chain {}: no finite values)", empty[0]),
+        _ => format!("{label} (chains {}: no finite values)", empty.join(", ")),
     }
 }
 
@@ -467,9 +490,10 @@ pub fn marginal_plot(path: &Path, marginals: &[Marginal<'_>]) -> Result<(u32, u3
             let dens = density_histogram(&pooled, &x_range, bins);
             let peak = sd.map_or(0.0, |s| gauss_pdf(m.analysis, m.analysis, s));
             let y_max = dens.iter().copied().fold(peak, f64::max).max(1e-300) * 1.1;
+            let label = fit_label(m.series.label, MAX_MARGINAL_LABEL_CHARS);
             let caption = match sd {
-                Some(_) => format!("{} ({n} draws)", m.series.label),
-                None => format!("{} ({n} draws; no Laplace)", m.series.label),
+                Some(_) => format!("{label} ({n} draws)"),
+                None => format!("{label} ({n} draws; no Laplace)"),
             };
             let mut chart = ChartBuilder::on(area)
                 .caption(caption, (FAMILY, 17))
@@ -618,6 +642,21 @@ where
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn long_labels_keep_their_ends_around_an_ellipsis() {
+        // Display rule of this module, no outside source.
+        assert_eq!(fit_label("x17 (R-hat 1.04)", 90), "x17 (R-hat 1.04)");
+        assert_eq!(fit_label("a\nb\0c", 90), "a b c");
+        let huge = format!("{} (R-hat 1.04)", "n".repeat(5_000_000));
+        let f = fit_label(&huge, 40);
+        assert_eq!(f.chars().count(), 40);
+        assert!(
+            f.starts_with("nnn") && f.contains('…') && f.ends_with("(R-hat 1.04)"),
+            "{f}"
+        );
+        assert_eq!(fit_label("abcdef", 4), "ab…f");
+    }
 
     #[test]
     fn density_histogram_has_unit_area() {

@@ -7,7 +7,8 @@ use crate::diagnostics::ComponentStats;
 use crate::error::{Error, Result};
 
 /// Writes a CSV with a `component` and a `name` column followed by the given columns. Names holding a
-/// comma, a quote or a line break are quoted (RFC 4180); a missing value is written as `NaN`.
+/// comma, a quote or a line break are quoted (RFC 4180); a name a spreadsheet would take for a formula
+/// is written with a leading single quote (see [`csv_field`]); a missing value is written as `NaN`.
 pub fn write_columns(path: &Path, names: &[String], columns: &[(&str, &[f64])]) -> Result<()> {
     let mut s = String::from("component,name");
     for (h, _) in columns {
@@ -25,9 +26,21 @@ pub fn write_columns(path: &Path, names: &[String], columns: &[(&str, &[f64])]) 
     write_atomic(path, s.as_bytes())
 }
 
-/// A CSV field, quoted where RFC 4180 needs it.
-fn csv_field(s: &str) -> String {
-    if s.contains([',', '"', '\n', '\r']) {
+/// First characters that make spreadsheet programs read a cell as a formula (OWASP, "CSV Injection").
+const FORMULA_STARTS: [char; 6] = ['=', '+', '-', '@', '\t', '\r'];
+
+/// A CSV field, quoted where RFC 4180 needs it. A field starting with `=`, `+`, `-`, `@`, a tab or a
+/// carriage return gets a leading single quote, so that a spreadsheet shows it as text instead of
+/// evaluating it (the OWASP advice for CSV injection), and is then quoted.
+pub fn csv_field(s: &str) -> String {
+    let guarded;
+    let s = if s.starts_with(FORMULA_STARTS) {
+        guarded = format!("'{s}");
+        guarded.as_str()
+    } else {
+        s
+    };
+    if s.starts_with('\'') || s.contains([',', '"', '\n', '\r']) {
         format!("\"{}\"", s.replace('"', "\"\""))
     } else {
         s.to_string()
@@ -174,6 +187,21 @@ impl ComponentTable<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn formula_like_names_are_written_as_text() {
+        // OWASP, "CSV Injection": cells starting with = + - @ tab or CR are prefixed with a single
+        // quote and quoted; RFC 4180 quoting of commas, quotes and line breaks.
+        assert_eq!(csv_field("=HYPERLINK(\"x\")"), "\"'=HYPERLINK(\"\"x\"\")\"");
+        assert_eq!(csv_field("+1"), "\"'+1\"");
+        assert_eq!(csv_field("-x"), "\"'-x\"");
+        assert_eq!(csv_field("@SUM(A1)"), "\"'@SUM(A1)\"");
+        assert_eq!(csv_field("\tx"), "\"'\tx\"");
+        assert_eq!(csv_field("\rx"), "\"'\rx\"");
+        assert_eq!(csv_field("T(lev=2,lat=10)"), "\"T(lev=2,lat=10)\"");
+        assert_eq!(csv_field("x-1"), "x-1");
+        assert_eq!(csv_field("'quoted"), "\"'quoted\"");
+    }
 
     #[test]
     fn significant_digits() {

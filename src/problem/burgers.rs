@@ -20,9 +20,11 @@
 //! J(u₀) = ½ (u₀ − u_b)ᵀ B⁻¹ (u₀ − u_b) + ½ Σ_k Σ_s (y_{k,s} − u_k[s])² / σ_o²,
 //! with u_k the state after k steps, observations of every `obs_stride`-th point every `obs_every` steps,
 //! and B = σ_b² times a SOAR correlation on the circle (periodised over the domain's images, so that it
-//! is positive definite on every grid), circulant and applied through the FFT ([`CirculantPrior`]). The gradient comes from the hand-written adjoint of the RK4 step; the
-//! stage states are recomputed from the stored step states during the adjoint sweep, so memory is
-//! (window + 1) n numbers. Work buffers are pooled, so an evaluation allocates only the FFT buffers.
+//! is positive definite on every grid), circulant and applied through the FFT ([`CirculantPrior`]). The
+//! gradient comes from the hand-written adjoint of the RK4 step; the stage states are recomputed from the
+//! stored step states during the adjoint sweep, so memory is (window + 1) n numbers per evaluation
+//! running at once, checked against the machine's memory (with the rest of the problem's) before
+//! anything is allocated. Work buffers are pooled, so an evaluation allocates only the FFT buffers.
 //!
 //! Demo truth: u₀(x) = Σ_{m=1}^{3} (1/m) sin(2π m x + φ_m) with phases φ_m drawn uniformly from the seed.
 
@@ -34,19 +36,20 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 use rustfft::num_complex::Complex;
 
+use super::batch::parallel_costs;
 use super::circulant::{periodised_column, soar, CirculantPrior};
 use super::lorenz96::{normal_draws, Observation, SynthMode};
+use super::memory::{concurrent_evaluations, MemoryPlan, VEC_HEADER};
 use super::prior::Prior;
-use super::settings::{observation_schedule, positive, Settings};
+use super::settings::{in_range, observation_schedule, positive, scale, Settings};
 use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
 /// Amplitudes of the sine modes m = 1, 2, 3 of the demo truth.
 pub const TRUTH_AMPLITUDES: [f64; 3] = [1.0, 0.5, 1.0 / 3.0];
 
-/// Largest (window + 1) × n accepted: the trajectory kept for the adjoint is that many numbers per
-/// concurrent evaluation (here 200 MB).
-pub const MAX_TRAJECTORY_LEN: usize = 25_000_000;
+/// Longest accepted correlation length, in domain units.
+pub const MAX_CORR_LEN: f64 = 10.0;
 
 /// The discretised viscous Burgers model on [0, 1) with an RK4 step, its tangent-linear and adjoint.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -380,14 +383,14 @@ impl BurgersConfig {
         let d = BurgersConfig::default();
         let c = BurgersConfig {
             n: s.get("n", d.n)?,
-            nu: positive("nu", s.get("nu", d.nu)?)?,
-            dt: positive("dt", s.get("dt", d.dt)?)?,
+            nu: s.get("nu", d.nu)?,
+            dt: s.get("dt", d.dt)?,
             window: s.get("window", d.window)?,
             obs_every: s.get("obs_every", d.obs_every)?,
             obs_stride: s.get("obs_stride", d.obs_stride)?,
-            sigma_o: positive("sigma_o", s.get("sigma_o", d.sigma_o)?)?,
-            sigma_b: positive("sigma_b", s.get("sigma_b", d.sigma_b)?)?,
-            corr_len: positive("corr_len", s.get("corr_len", d.corr_len)?)?,
+            sigma_o: s.get("sigma_o", d.sigma_o)?,
+            sigma_b: s.get("sigma_b", d.sigma_b)?,
+            corr_len: s.get("corr_len", d.corr_len)?,
             synth: SynthMode::from_settings(s)?,
             seed: s.get("seed", d.seed)?,
         };
@@ -418,23 +421,64 @@ impl BurgersConfig {
             ("dt", self.dt),
             ("sigma_o", self.sigma_o),
             ("sigma_b", self.sigma_b),
-            ("corr_len", self.corr_len),
         ] {
-            positive(key, v)?;
+            scale(key, v)?;
         }
+        positive("corr_len", self.corr_len)?;
+        in_range(
+            "corr_len",
+            self.corr_len,
+            1e-150,
+            MAX_CORR_LEN,
+            "in domain units; the periodised correlation sums images over about 40 corr_len domain \
+             lengths, and a longer correlation makes B singular on any useful grid",
+        )?;
         observation_schedule(self.window, self.obs_every, self.obs_stride, self.n)?;
-        let len = (self.window + 1).saturating_mul(self.n);
-        if len > MAX_TRAJECTORY_LEN {
-            return Err(Error::Config(format!(
-                "settings window={} and n={}: the trajectory kept for the adjoint would hold {len} \
-                 numbers ({} MB per evaluation), more than the {MAX_TRAJECTORY_LEN} allowed; shorten \
-                 the window or coarsen the grid",
-                self.window,
-                self.n,
-                len * 8 / 1_000_000
-            )));
-        }
-        Ok(())
+        self.memory_plan().check(&format!(
+            "burgers with n = {} and window = {}",
+            self.n, self.window
+        ))
+    }
+
+    /// The memory a problem of these settings holds at its peak: the truth run (a flat trajectory and
+    /// its per-step copy), the observations, the background-error covariance in FFT form, and the
+    /// pooled work buffers (a trajectory of (window + 1) n numbers and 13 n more) of each evaluation
+    /// running at once.
+    pub fn memory_plan(&self) -> MemoryPlan {
+        let n = self.n as u128;
+        let steps = self.window as u128 + 1;
+        let flat = steps.saturating_mul(n).saturating_mul(8);
+        let rows = steps.saturating_mul((8 * n).saturating_add(VEC_HEADER));
+        let n_obs = (self.window / self.obs_every.max(1)) as u128
+            * n.div_ceil(self.obs_stride.max(1) as u128);
+        let threads = concurrent_evaluations();
+        MemoryPlan::new()
+            .part(
+                "the truth run, flat and per step (2 (window + 1) n numbers)",
+                flat.saturating_add(rows),
+                "lower window or n",
+            )
+            .part(
+                format!("the {n_obs} observations"),
+                n_obs
+                    .saturating_mul(32 + 24)
+                    .saturating_add(steps.saturating_mul(VEC_HEADER)),
+                "raise obs_every or obs_stride, or lower window",
+            )
+            .part(
+                "the background-error covariance in FFT form (about 16 n numbers)",
+                n.saturating_mul(16 * 8),
+                "lower n",
+            )
+            .part(
+                format!(
+                    "the work buffers of {threads} evaluations running at once ((window + 1) n + \
+                     13 n numbers each)"
+                ),
+                flat.saturating_add(n.saturating_mul(13 * 8))
+                    .saturating_mul(threads),
+                "lower window or n",
+            )
     }
 
     /// The first column of B: σ_b² times the SOAR correlation (1 + d/L) e^{−d/L}, L = corr_len,
@@ -750,6 +794,9 @@ impl Problem for Burgers {
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
         Ok(Some(self.evaluate(x, None)?))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)

@@ -13,9 +13,11 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
+use super::batch::parallel_costs;
+use super::memory::{concurrent_evaluations, MemoryPlan};
 use super::prior::{DiagonalPrior, Prior};
-use super::settings::{positive, Settings};
-use super::{CostSplit, Problem};
+use super::settings::{in_range, scale, Settings};
+use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
 /// Settings of the linear-Gaussian problem.
@@ -65,9 +67,9 @@ impl LinearGaussianConfig {
             n,
             m,
             rank: s.get("rank", m.min(n))?,
-            b_cond: positive("b_cond", s.get("b_cond", d.b_cond)?)?,
-            r_cond: positive("r_cond", s.get("r_cond", d.r_cond)?)?,
-            sigma_o: positive("sigma_o", s.get("sigma_o", d.sigma_o)?)?,
+            b_cond: s.get("b_cond", d.b_cond)?,
+            r_cond: s.get("r_cond", d.r_cond)?,
+            sigma_o: s.get("sigma_o", d.sigma_o)?,
             synth: s.get_str("synth").unwrap_or(d.synth),
             seed: s.get("seed", d.seed)?,
         };
@@ -75,9 +77,15 @@ impl LinearGaussianConfig {
         Ok(c)
     }
 
-    fn validate(&self) -> Result<()> {
-        if self.n == 0 || self.m == 0 {
-            return Err(Error::Config("settings n and m must be at least 1".into()));
+    /// Checks every setting's range, then that a problem of this size fits in this machine's memory
+    /// (see [`LinearGaussianConfig::memory_plan`]).
+    pub fn validate(&self) -> Result<()> {
+        for (key, v) in [("n", self.n), ("m", self.m)] {
+            if v == 0 {
+                return Err(Error::Config(format!(
+                    "setting {key}=0: it must be at least 1"
+                )));
+            }
         }
         if self.rank == 0 || self.rank > self.m.min(self.n) {
             return Err(Error::Config(format!(
@@ -86,29 +94,73 @@ impl LinearGaussianConfig {
                 self.m.min(self.n)
             )));
         }
-        if self.b_cond < 1.0 || self.r_cond < 1.0 {
-            return Err(Error::Config(
-                "settings b_cond and r_cond are condition numbers: at least 1".into(),
-            ));
+        for (key, v) in [("b_cond", self.b_cond), ("r_cond", self.r_cond)] {
+            in_range(
+                key,
+                v,
+                1.0,
+                MAX_CONDITION,
+                "a condition number; beyond 1e12 double precision keeps fewer than 4 significant \
+                 digits of the closed-form reference",
+            )?;
         }
+        scale("sigma_o", self.sigma_o)?;
+        // The largest observation-error variance is sigma_o² r_cond.
+        scale("sigma_o", self.sigma_o * self.r_cond.sqrt())
+            .map_err(|_| Error::Config(format!(
+                "settings sigma_o={} and r_cond={}: the largest observation-error standard deviation \
+                 sigma_o sqrt(r_cond) must stay below 1e150; lower one of them",
+                self.sigma_o, self.r_cond
+            )))?;
         if self.synth != "demo" && self.synth != "calibration" {
             return Err(Error::Config(format!(
                 "setting synth={}: use 'demo' or 'calibration'",
                 self.synth
             )));
         }
-        let size = (self.n as f64) * (self.rank as f64 + self.m as f64 / self.n as f64);
-        if size > 2e8 {
-            return Err(Error::Config(format!(
-                "n = {} with rank {} needs {:.1} GB for the forward map; lower n or rank",
-                self.n,
-                self.rank,
-                size * 8e-9
-            )));
-        }
-        Ok(())
+        self.memory_plan().check(&format!(
+            "linear-gaussian with n = {}, m = {} and rank = {}",
+            self.n, self.m, self.rank
+        ))
+    }
+
+    /// The memory a problem of these settings holds at its peak: the factors A (m × rank) and C
+    /// (rank × n) of the forward map, R⁻¹A and the rank × n products formed for the closed form, the
+    /// vectors of observations and state, and the work of each evaluation running at once.
+    pub fn memory_plan(&self) -> MemoryPlan {
+        let (n, m, r) = (self.n as u128, self.m as u128, self.rank as u128);
+        let f64s = |count: u128| count.saturating_mul(8);
+        let threads = concurrent_evaluations();
+        MemoryPlan::new()
+            .part(
+                "the forward map's factor A and R^-1 A formed for the closed form (2 m rank numbers)",
+                f64s(m.saturating_mul(r).saturating_mul(2)),
+                "lower m or rank",
+            )
+            .part(
+                "the forward map's factor C and two rank x n products of the closed form \
+                 (3 rank n numbers)",
+                f64s(r.saturating_mul(n).saturating_mul(3)),
+                "lower n or rank",
+            )
+            .part(
+                "the observation and state vectors (6 m + 8 n numbers)",
+                f64s(m.saturating_mul(6).saturating_add(n.saturating_mul(8))),
+                "lower m or n",
+            )
+            .part(
+                format!(
+                    "the work of {threads} evaluations running at once \
+                     (2 m + 2 rank + 2 n numbers each)"
+                ),
+                f64s((m + r + n).saturating_mul(2).saturating_mul(threads)),
+                "lower m or n",
+            )
     }
 }
+
+/// Largest accepted condition number of B or R.
+pub const MAX_CONDITION: f64 = 1e12;
 
 /// The closed-form posterior of the linear-Gaussian problem.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -221,7 +273,8 @@ impl LinearGaussian {
         self.c.tr_mul(&self.a.tr_mul(v))
     }
 
-    fn split(&self, x: &[f64]) -> (CostSplit, DVector<f64>) {
+    fn split(&self, x: &[f64]) -> std::result::Result<(CostSplit, DVector<f64>), EvalError> {
+        check_len("the control vector", x, self.config.n)?;
         let b = self.prior.variance();
         let xb = self.prior.mean();
         let jb = 0.5
@@ -234,13 +287,13 @@ impl LinearGaussian {
             * (0..self.y.len())
                 .map(|j| (self.y[j] - gx[j]) * wd[j])
                 .sum::<f64>();
-        (
+        Ok((
             CostSplit {
                 background: jb,
                 observation: jo,
             },
             wd,
-        )
+        ))
     }
 
     /// The closed-form posterior mean and variances, through the rank-r Woodbury form.
@@ -282,7 +335,8 @@ impl Problem for LinearGaussian {
         self.config.n
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
-        let (s, wd) = self.split(x);
+        check_len("the gradient buffer", grad, self.config.n)?;
+        let (s, wd) = self.split(x)?;
         let b = self.prior.variance();
         let xb = self.prior.mean();
         let gtw = self.adjoint(&wd);
@@ -292,7 +346,7 @@ impl Problem for LinearGaussian {
         Ok(s.background + s.observation)
     }
     fn cost(&self, x: &[f64]) -> std::result::Result<f64, EvalError> {
-        let (s, _) = self.split(x);
+        let (s, _) = self.split(x)?;
         Ok(s.background + s.observation)
     }
     fn has_hess_vec(&self) -> bool {
@@ -304,6 +358,8 @@ impl Problem for LinearGaussian {
         v: &[f64],
         out: &mut [f64],
     ) -> std::result::Result<(), EvalError> {
+        check_len("the direction", v, self.config.n)?;
+        check_len("the product buffer", out, self.config.n)?;
         let b = self.prior.std();
         let gv = self.forward(v);
         let w = DVector::from_fn(gv.len(), |j, _| gv[j] * self.r_inv[j]);
@@ -314,7 +370,10 @@ impl Problem for LinearGaussian {
         Ok(())
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
-        Ok(Some(self.split(x).0))
+        Ok(Some(self.split(x)?.0))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)

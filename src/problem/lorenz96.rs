@@ -18,10 +18,12 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
+use super::batch::parallel_costs;
 use super::circulant::soar;
+use super::memory::{concurrent_evaluations, MemoryPlan, VEC_HEADER};
 use super::prior::{DensePrior, Prior};
-use super::settings::{observation_schedule, positive, Settings};
-use super::{CostSplit, Problem};
+use super::settings::{in_range, observation_schedule, positive, scale, Settings};
+use super::{check_len, CostSplit, Problem};
 use crate::error::{Error, EvalError, Result};
 
 /// The Lorenz-96 model with an RK4 step, its tangent-linear and its adjoint.
@@ -321,7 +323,7 @@ impl Lorenz96Config {
         let model = Lorenz96Model {
             n: s.get("n", d.model.n)?,
             forcing: s.get("forcing", d.model.forcing)?,
-            dt: positive("dt", s.get("dt", d.model.dt)?)?,
+            dt: scale("dt", s.get("dt", d.model.dt)?)?,
         };
         let synth = SynthMode::from_settings(s)?;
         let obs_op = match s.get_str("obs_op") {
@@ -331,12 +333,12 @@ impl Lorenz96Config {
         let c = Lorenz96Config {
             model,
             window: s.get("window", d.window)?,
-            sigma_b: positive("sigma_b", s.get("sigma_b", d.sigma_b)?)?,
-            corr_len: positive("corr_len", s.get("corr_len", d.corr_len)?)?,
+            sigma_b: scale("sigma_b", s.get("sigma_b", d.sigma_b)?)?,
+            corr_len: scale("corr_len", s.get("corr_len", d.corr_len)?)?,
             obs_op,
             obs_every: s.get("obs_every", d.obs_every)?,
             obs_stride: s.get("obs_stride", d.obs_stride)?,
-            sigma_o: positive("sigma_o", s.get("sigma_o", d.sigma_o)?)?,
+            sigma_o: scale("sigma_o", s.get("sigma_o", d.sigma_o)?)?,
             spinup: s.get("spinup", d.spinup)?,
             synth,
             seed: s.get("seed", d.seed)?,
@@ -345,18 +347,95 @@ impl Lorenz96Config {
         Ok(c)
     }
 
-    fn validate(&self) -> Result<()> {
+    /// Checks every setting's range, then that a problem of this size fits in this machine's memory
+    /// (see [`Lorenz96Config::memory_plan`]). Settings read from a scenario file pass through here too.
+    pub fn validate(&self) -> Result<()> {
         if self.model.n < 4 {
             return Err(Error::Config(format!(
                 "setting n={}: Lorenz-96 needs at least 4 sites",
                 self.model.n
             )));
         }
-        if !self.model.forcing.is_finite() {
-            return Err(Error::Config("setting forcing: it must be finite".into()));
+        in_range(
+            "forcing",
+            self.model.forcing,
+            -1e6,
+            1e6,
+            "the standard value is 8; the model blows up long before these bounds",
+        )?;
+        positive("dt", self.model.dt)?;
+        for (key, v) in [
+            ("dt", self.model.dt),
+            ("sigma_b", self.sigma_b),
+            ("corr_len", self.corr_len),
+            ("sigma_o", self.sigma_o),
+        ] {
+            scale(key, v)?;
         }
         observation_schedule(self.window, self.obs_every, self.obs_stride, self.model.n)?;
-        Ok(())
+        if self.spinup > MAX_SPINUP {
+            return Err(Error::Config(format!(
+                "setting spinup={}: at most {MAX_SPINUP} steps (the truth reaches the attractor within \
+                 a few hundred steps; more only costs time)",
+                self.spinup
+            )));
+        }
+        self.memory_plan().check(&format!(
+            "lorenz96 with n = {} and window = {}",
+            self.model.n, self.window
+        ))
+    }
+
+    /// The memory a problem of these settings holds at its peak: B with the copy and Cholesky factor made
+    /// while factorising it, the true trajectory, the observations, and the trajectory and adjoint
+    /// forcing kept by each evaluation running at once.
+    pub fn memory_plan(&self) -> MemoryPlan {
+        let n = self.model.n as u128;
+        let steps = self.window as u128 + 1;
+        let row = (8 * n).saturating_add(VEC_HEADER);
+        let trajectory = steps.saturating_mul(row);
+        let n_obs = (self.window / self.obs_every.max(1)) as u128
+            * n.div_ceil(self.obs_stride.max(1) as u128);
+        // An Observation (4 numbers) and its grouped copy (site, value, weight), one list per step.
+        let obs = n_obs
+            .saturating_mul(32 + 24)
+            .saturating_add(steps.saturating_mul(VEC_HEADER));
+        let threads = concurrent_evaluations();
+        MemoryPlan::new()
+            .part(
+                "the background-error covariance B, its copy and its Cholesky factor (3 n^2 numbers)",
+                n.saturating_mul(n).saturating_mul(24),
+                "lower n",
+            )
+            .part(
+                "the true trajectory over the window ((window + 1) n numbers)",
+                trajectory,
+                "lower window or n",
+            )
+            .part(
+                format!("the {n_obs} observations"),
+                obs,
+                "raise obs_every or obs_stride, or lower window",
+            )
+            .part(
+                format!(
+                    "the trajectories and adjoint forcings of {threads} evaluations running at once \
+                     (2 (window + 1) n numbers each)"
+                ),
+                trajectory.saturating_mul(2 * threads),
+                "lower window or n",
+            )
+    }
+
+    /// N(mean, B) with B factorised; a B that is not positive definite is reported with the settings
+    /// that made it.
+    fn dense_prior(&self, mean: Vec<f64>) -> Result<DensePrior> {
+        DensePrior::new(mean, self.background_cov()).map_err(|e| {
+            Error::Config(format!(
+                "settings corr_len={} and n={}: {e}; use a shorter corr_len",
+                self.corr_len, self.model.n
+            ))
+        })
     }
 
     /// The background-error covariance B: σ_b² times a SOAR correlation in the distance along the ring.
@@ -369,6 +448,9 @@ impl Lorenz96Config {
         })
     }
 }
+
+/// Most spin-up steps of a synthetic truth run.
+pub const MAX_SPINUP: usize = 10_000_000;
 
 /// A complete Lorenz-96 4D-Var scenario: settings, background, observations, and the truth where known.
 #[derive(Debug, Clone)]
@@ -391,7 +473,7 @@ impl Scenario {
         config.validate()?;
         let model = config.model;
         let n = model.n;
-        let prior = DensePrior::new(vec![0.0; n], config.background_cov())?;
+        let prior = config.dense_prior(vec![0.0; n])?;
         let mut rng = ChaCha8Rng::seed_from_u64(config.seed);
         // Spin-up from rest plus a small seeded perturbation, onto the attractor.
         let mut x: Vec<f64> = normal_draws(&mut rng, n)
@@ -418,6 +500,13 @@ impl Scenario {
             }
         };
         let truth = model.run(&truth0, config.window);
+        if let Some(k) = truth.iter().position(|x| x.iter().any(|v| !v.is_finite())) {
+            return Err(Error::Config(format!(
+                "settings dt={} and forcing={}: the truth run blew up (non-finite state at step {k} \
+                 of the window); use a smaller dt (0.05 is the standard step for forcing 8)",
+                model.dt, model.forcing
+            )));
+        }
         let mut observations = Vec::new();
         let mut step = config.obs_every;
         while step <= config.window {
@@ -680,7 +769,8 @@ impl Lorenz96 {
     /// The cost function of a scenario.
     pub fn new(scenario: Scenario) -> Result<Self> {
         let c = &scenario.config;
-        let prior = DensePrior::new(scenario.background.clone(), c.background_cov())?;
+        c.validate()?;
+        let prior = c.dense_prior(scenario.background.clone())?;
         let mut obs_at = vec![Vec::new(); c.window + 1];
         for o in &scenario.observations {
             obs_at[o.step].push((o.site, o.value, 1.0 / (o.sigma * o.sigma)));
@@ -702,10 +792,18 @@ impl Lorenz96 {
         &self.prior
     }
 
-    fn split(&self, x: &[f64], grad: Option<&mut [f64]>) -> CostSplit {
+    fn split(
+        &self,
+        x: &[f64],
+        grad: Option<&mut [f64]>,
+    ) -> std::result::Result<CostSplit, EvalError> {
         let model = self.scenario.config.model;
         let op = self.scenario.config.obs_op;
         let n = model.n;
+        check_len("the control vector", x, n)?;
+        if let Some(g) = &grad {
+            check_len("the gradient buffer", g, n)?;
+        }
         let dxb: Vec<f64> = x
             .iter()
             .zip(self.prior.mean())
@@ -738,10 +836,10 @@ impl Lorenz96 {
                 g[i] = binv_d[i] + a[i];
             }
         }
-        CostSplit {
+        Ok(CostSplit {
             background: jb,
             observation: jo,
-        }
+        })
     }
 }
 
@@ -753,15 +851,18 @@ impl Problem for Lorenz96 {
         Some((0..self.dim()).map(|i| format!("x{i}")).collect())
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
-        let s = self.split(x, Some(grad));
+        let s = self.split(x, Some(grad))?;
         Ok(s.background + s.observation)
     }
     fn cost(&self, x: &[f64]) -> std::result::Result<f64, EvalError> {
-        let s = self.split(x, None);
+        let s = self.split(x, None)?;
         Ok(s.background + s.observation)
     }
     fn cost_split(&self, x: &[f64]) -> std::result::Result<Option<CostSplit>, EvalError> {
-        Ok(Some(self.split(x, None)))
+        Ok(Some(self.split(x, None)?))
+    }
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<std::result::Result<f64, EvalError>> {
+        parallel_costs(self, xs)
     }
     fn prior(&self) -> Option<&dyn Prior> {
         Some(&self.prior)

@@ -5,6 +5,7 @@
 //! problem is a cost function J(x) over the control vector x with its gradient; the posterior it defines
 //! is π(x) ∝ exp(−J(x)). The sign flip to a log-density happens in one place only, the sampler's target.
 
+pub mod batch;
 pub mod builtin;
 pub mod burgers;
 pub mod check;
@@ -12,6 +13,7 @@ pub mod circulant;
 pub mod counted;
 pub mod linear_gaussian;
 pub mod lorenz96;
+pub mod memory;
 pub mod prior;
 pub mod replay;
 pub mod settings;

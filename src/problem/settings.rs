@@ -120,6 +120,41 @@ pub fn positive(key: &str, v: f64) -> Result<f64> {
     }
 }
 
+/// Checks that a numeric setting is finite and within [lo, hi]; `why` says what the bounds protect.
+pub fn in_range(key: &str, v: f64, lo: f64, hi: f64, why: &str) -> Result<f64> {
+    if v.is_finite() && (lo..=hi).contains(&v) {
+        Ok(v)
+    } else {
+        Err(Error::Config(format!(
+            "setting {key}={v}: it must be a finite number between {} and {} ({why})",
+            bound(lo),
+            bound(hi)
+        )))
+    }
+}
+
+/// A bound for a message: plain for ordinary magnitudes, scientific for very large or small ones.
+fn bound(v: f64) -> String {
+    if v != 0.0 && !(1e-4..1e6).contains(&v.abs()) {
+        format!("{v:e}")
+    } else {
+        format!("{v}")
+    }
+}
+
+/// Checks a standard deviation or length scale: positive, and between 1e-150 and 1e150 so that its
+/// square and inverse square (variances, precisions) are finite.
+pub fn scale(key: &str, v: f64) -> Result<f64> {
+    positive(key, v)?;
+    in_range(
+        key,
+        v,
+        1e-150,
+        1e150,
+        "its square and inverse square must be finite",
+    )
+}
+
 /// Checks the observation schedule of a synthetic 4D-Var scenario: a window of at least one step,
 /// observations every `obs_every` steps within it, and every `obs_stride`-th of `n` points.
 pub fn observation_schedule(
@@ -144,4 +179,26 @@ pub fn observation_schedule(
         )));
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn out_of_range_values_are_refused_with_their_name() {
+        // Input validation, no outside source.
+        for v in [f64::NAN, f64::INFINITY, -1.0, 0.0, 1e-200, 1e200] {
+            let e = scale("sigma_o", v).unwrap_err().to_string();
+            assert!(e.contains("setting sigma_o="), "{e}");
+        }
+        assert_eq!(scale("sigma_o", 0.5).unwrap(), 0.5);
+        let e = in_range("b_cond", 1e20, 1.0, 1e12, "why")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("b_cond=100000000000000000000") && e.contains("1e12"),
+            "{e}"
+        );
+    }
 }

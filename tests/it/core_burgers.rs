@@ -460,10 +460,10 @@ fn non_positive_definite_circulants_are_refused() {
         .to_string();
     assert!(e.contains("not symmetric"), "{e}");
     // A correlation length far beyond the grid spacing: B is singular to working precision.
-    let s = Settings::from_pairs(&[("corr_len", "20")]);
+    let s = Settings::from_pairs(&[("corr_len", "8")]);
     let e = builtin::open("burgers", &s).err().unwrap().to_string();
     assert!(
-        e.contains("corr_len=20") && e.contains("correlation length"),
+        e.contains("corr_len=8") && e.contains("correlation length"),
         "{e}"
     );
 }
@@ -514,4 +514,52 @@ fn bad_burgers_settings_fail_with_exit_code_2() {
     let e = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(2), "{e}");
     assert!(e.contains("unstable") && !e.contains("panicked"), "{e}");
+}
+
+/// The error of building burgers from settings (it must fail).
+fn refusal(pairs: &[(&str, &str)]) -> String {
+    match builtin::open("burgers", &Settings::from_pairs(pairs)) {
+        Ok(_) => panic!("burgers {pairs:?} was accepted"),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn sizes_beyond_the_machine_are_refused_before_allocating() {
+    // Input validation, no outside source. The truth run alone keeps 2 (window + 1) n numbers.
+    let cfg = BurgersConfig {
+        n: 2000,
+        window: 1_000_000,
+        ..Default::default()
+    };
+    assert!(cfg.memory_plan().total() > 2 * 8 * 2000 * 1_000_000);
+    assert!(BurgersConfig::default().memory_plan().total() < 10_000_000);
+    let e = refusal(&[("window", "1000000000000")]);
+    assert!(
+        e.contains("would need") && e.contains("lower window or n"),
+        "{e}"
+    );
+    let e = refusal(&[("n", "1000000000000"), ("obs_stride", "1")]);
+    assert!(
+        e.contains("would need") && e.contains("n = 1000000000000"),
+        "{e}"
+    );
+}
+
+#[test]
+fn non_finite_and_out_of_range_settings_are_named() {
+    // Input validation, no outside source.
+    for (key, value) in [
+        ("nu", "inf"),
+        ("nu", "0"),
+        ("dt", "NaN"),
+        ("sigma_o", "1e-300"),
+        ("sigma_b", "-0.2"),
+        ("corr_len", "1e6"),
+        ("corr_len", "nan"),
+        ("n", "4"),
+    ] {
+        let e = refusal(&[(key, value)]);
+        assert!(e.contains(&format!("setting {key}=")), "{key}={value}: {e}");
+    }
 }

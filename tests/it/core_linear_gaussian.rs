@@ -160,3 +160,53 @@ fn minimiser_backs_off_from_non_finite_trial_points() {
         m.x
     );
 }
+
+/// The error of building linear-gaussian from settings (it must fail).
+fn refusal(pairs: &[(&str, &str)]) -> String {
+    match varpost::problem::builtin::open(
+        "linear-gaussian",
+        &varpost::problem::settings::Settings::from_pairs(pairs),
+    ) {
+        Ok(_) => panic!("linear-gaussian {pairs:?} was accepted"),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn sizes_beyond_the_machine_are_refused_before_allocating() {
+    // Input validation, no outside source. m = 1e8 observations with the default n = 20 (rank 20): the
+    // factor A and R^-1 A hold 2 m rank numbers, 32 GB.
+    let cfg = LinearGaussianConfig {
+        m: 100_000_000,
+        rank: 20,
+        ..Default::default()
+    };
+    assert!(cfg.memory_plan().total() > 32_000_000_000);
+    assert!(LinearGaussianConfig::default().memory_plan().total() < 1_000_000);
+    // Sizes no machine holds, so the refusal does not depend on this machine's memory.
+    let e = refusal(&[("m", "100000000000000")]);
+    assert!(
+        e.contains("would need") && e.contains("lower m or rank"),
+        "{e}"
+    );
+    let e = refusal(&[("n", "100000000000000"), ("m", "10")]);
+    assert!(e.contains("would need") && e.contains("lower n"), "{e}");
+}
+
+#[test]
+fn non_finite_and_out_of_range_settings_are_named() {
+    // Input validation, no outside source.
+    for (key, value) in [
+        ("b_cond", "inf"),
+        ("b_cond", "0.5"),
+        ("r_cond", "1e20"),
+        ("sigma_o", "NaN"),
+        ("sigma_o", "0"),
+        ("n", "0"),
+        ("m", "0"),
+        ("rank", "30"),
+    ] {
+        let e = refusal(&[(key, value)]);
+        assert!(e.contains(&format!("setting {key}=")), "{key}={value}: {e}");
+    }
+}

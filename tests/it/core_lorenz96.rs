@@ -273,3 +273,61 @@ fn square_operator_is_used() {
         "squared observations are not negative"
     );
 }
+
+/// The error of building the built-in `problem` from settings (it must fail).
+fn refusal(problem: &str, pairs: &[(&str, &str)]) -> String {
+    match builtin::open(
+        problem,
+        &varpost::problem::settings::Settings::from_pairs(pairs),
+    ) {
+        Ok(_) => panic!("{problem} {pairs:?} was accepted"),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn sizes_beyond_the_machine_are_refused_before_allocating() {
+    // Input validation, no outside source. The estimate counts B, its copy and its Cholesky factor
+    // (3 n^2 numbers): n = 100000 needs more than 80 GB for B alone.
+    let big = Lorenz96Config {
+        model: Lorenz96Model {
+            n: 100_000,
+            ..Default::default()
+        },
+        ..Default::default()
+    };
+    assert!(big.memory_plan().total() > 3 * 80_000_000_000);
+    assert!(Lorenz96Config::default().memory_plan().total() < 10_000_000);
+    // Sizes no machine holds (petabytes), so the refusal does not depend on this machine's memory.
+    let e = refusal("lorenz96", &[("n", "10000000")]);
+    assert!(e.contains("would need") && e.contains("PiB"), "{e}");
+    assert!(e.contains("Cholesky") && e.contains("lower n"), "{e}");
+    let e = refusal("lorenz96", &[("window", "1000000000000")]);
+    assert!(
+        e.contains("window = 1000000000000") && e.contains("lower window"),
+        "{e}"
+    );
+    let e = refusal("lorenz96", &[("window", &usize::MAX.to_string())]);
+    assert!(e.contains("would need"), "{e}");
+}
+
+#[test]
+fn non_finite_and_out_of_range_settings_are_named() {
+    // Input validation, no outside source.
+    for (key, value) in [
+        ("sigma_o", "inf"),
+        ("sigma_o", "NaN"),
+        ("sigma_b", "1e-200"),
+        ("corr_len", "-1"),
+        ("dt", "0"),
+        ("forcing", "nan"),
+        ("forcing", "1e300"),
+        ("spinup", "100000000000"),
+    ] {
+        let e = refusal("lorenz96", &[(key, value)]);
+        assert!(e.contains(&format!("setting {key}=")), "{key}={value}: {e}");
+    }
+    // A step far beyond RK4's stability for this model blows the truth run up.
+    let e = refusal("lorenz96", &[("dt", "1.5")]);
+    assert!(e.contains("blew up") && e.contains("dt=1.5"), "{e}");
+}

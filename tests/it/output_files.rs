@@ -262,6 +262,35 @@ fn ensemble_without_optional_fields_and_with_no_members() {
     assert_eq!(f64s(&got["scipy"]["vars"]["analysis"]["data"]), analysis);
 }
 
+#[test]
+fn ensemble_names_with_nul_and_huge_names_read_back_whole() {
+    // Read back by Python netCDF4 and scipy.io.netcdf_file; the storage rule (NUL written as \0, names
+    // cut to MAX_NAME_BYTES ending in "...") is this project's, stated in the comment attribute.
+    use varpost::output::ensemble::MAX_NAME_BYTES;
+    let dir = common::temp_dir("ensemble-names");
+    let names: Vec<String> = vec!["T\0lev2".into(), "x".repeat(5_000_000), "q".into()];
+    let analysis = vec![1.0, 2.0, 3.0];
+    let info = EnsembleInfo {
+        analysis: &analysis,
+        names: Some(&names),
+        ..Default::default()
+    };
+    let path = write_ensemble(&dir, &info, 0, std::iter::empty()).unwrap();
+    assert!(std::fs::metadata(&path).unwrap().len() < 10_000);
+    let got = run_python(NC_READER, &[&path]);
+    let cut = format!("{}...", "x".repeat(MAX_NAME_BYTES - 3));
+    for r in [&got["netCDF4"], &got["scipy"]] {
+        let v = &r["vars"]["component_name"];
+        assert_eq!(strs(&v["data"]), ["T\\0lev2", cut.as_str(), "q"]);
+        let comment = v["attrs"]["comment"].as_str().unwrap();
+        assert!(
+            comment.contains("NUL") && comment.contains("components.csv"),
+            "{comment}"
+        );
+    }
+    assert_eq!(got["netCDF4"]["dims"]["name_strlen"], MAX_NAME_BYTES);
+}
+
 /// Files left in a folder, temporary ones included.
 fn listing(dir: &Path) -> Vec<String> {
     let mut v: Vec<String> = std::fs::read_dir(dir)
@@ -478,6 +507,34 @@ fn plots_survive_non_finite_and_empty_input() {
 }
 
 #[test]
+fn plots_of_a_five_megabyte_name_draw_a_shortened_label() {
+    // Display rule of this project, no outside source: labels are cut to MAX_LABEL_CHARS (90) and
+    // MAX_MARGINAL_LABEL_CHARS (40) characters around an ellipsis, so the text layout stays small.
+    use varpost::output::plots::{fit_label, MAX_LABEL_CHARS};
+    let dir = common::temp_dir("plots-long-name");
+    let label = format!("{} (R-hat 1.21, bulk ESS 38)", "v".repeat(5 << 20));
+    let chains = ar1_chains(2, 200, 0.5, 0.0, 4);
+    let s = [ChainSeries {
+        label: &label,
+        chains: &chains,
+    }];
+    let size = trace_plot(&dir.join("t.png"), &s).unwrap();
+    check_png(&dir.join("t.png"), size);
+    let m = [Marginal {
+        series: s[0],
+        analysis: 0.0,
+        laplace_std: Some(1.0),
+    }];
+    let size = marginal_plot(&dir.join("m.png"), &m).unwrap();
+    check_png(&dir.join("m.png"), size);
+    let shown = fit_label(&label, MAX_LABEL_CHARS);
+    assert!(
+        shown.len() < 400 && shown.ends_with("bulk ESS 38)"),
+        "{shown}"
+    );
+}
+
+#[test]
 fn report_links_resolve_to_decodable_pictures_and_text_is_escaped() {
     let dir = common::temp_dir("report");
     let pictures = draw_pictures(&dir);
@@ -589,7 +646,7 @@ print(json.dumps({"src": p.src, "href": p.href, "rows": p.rows, "text": "".join(
 fn components_csv_parses_with_the_expected_header() {
     let dir = common::temp_dir("components-csv");
     let n = 4;
-    let names: Vec<String> = ["x0", "T(lev=2,lat=10)", "say \"hi\"", "q"]
+    let names: Vec<String> = ["x0", "T(lev=2,lat=10)", "say \"hi\"", "=SUM(A1:A2)"]
         .iter()
         .map(|s| s.to_string())
         .collect();
@@ -651,7 +708,11 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
         "component,name,analysis,background_std,laplace_std,posterior_mean,posterior_std,mcse_mean,\
          ess_bulk,ess_tail,rhat"
     );
-    assert_eq!(strs(&got["names"]), names);
+    // A name a spreadsheet would evaluate comes back as text with a leading single quote (OWASP,
+    // "CSV Injection").
+    let mut shown = names.clone();
+    shown[3] = "'=SUM(A1:A2)".into();
+    assert_eq!(strs(&got["names"]), shown);
     assert_eq!(got["component"], serde_json::json!([0, 1, 2, 3]));
     for (h, want) in [
         ("analysis", &a),
@@ -680,4 +741,74 @@ print(json.dumps(out, default=lambda o: o.tolist() if hasattr(o, "tolist") else 
             .contains("component statistics has 3 values for 4 components"),
         "{e}"
     );
+}
+
+/// Set for the child process of [`lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed`]:
+/// the folder [`lock_holder_child`] locks.
+const LOCK_CHILD_DIR: &str = "VARPOST_TEST_LOCK_CHILD_DIR";
+
+/// Not a test of its own: run in a child process by the test below, it takes the lock, says so on
+/// stdout and holds it until its stdin closes or it is killed.
+#[test]
+#[ignore = "run as a child process by lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed"]
+fn lock_holder_child() {
+    use std::io::{BufRead, Write};
+    let Ok(dir) = std::env::var(LOCK_CHILD_DIR) else {
+        return;
+    };
+    let lock =
+        varpost::output::lock::RunLock::acquire(Path::new(&dir), "varpost sample --out child")
+            .expect("the child takes the lock");
+    println!("locked");
+    std::io::stdout().flush().unwrap();
+    let mut line = String::new();
+    let _ = std::io::stdin().lock().read_line(&mut line);
+    drop(lock);
+}
+
+#[test]
+fn lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed() {
+    use std::io::{BufRead, BufReader};
+    use std::process::Stdio;
+    use varpost::output::lock::{RunLock, LOCK_FILE};
+    let dir = common::temp_dir("lock-child");
+    let mut child = Command::new(std::env::current_exe().unwrap())
+        .args([
+            "output_files::lock_holder_child",
+            "--exact",
+            "--ignored",
+            "--nocapture",
+            "--test-threads=1",
+        ])
+        .env(LOCK_CHILD_DIR, &dir)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let pid = child.id();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    assert!(
+        lines.any(|l| l.is_ok_and(|l| l.trim_end().ends_with("locked"))),
+        "the child process did not take the lock"
+    );
+    let e = RunLock::acquire(&dir, "varpost map --out x")
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains(&format!("process {pid} ")), "{e}");
+    assert!(
+        e.contains("`varpost sample --out child`") && e.contains("kill"),
+        "{e}"
+    );
+    // Killed: the kernel drops its flock, but its lock file stays behind with its details.
+    child.kill().unwrap();
+    child.wait().unwrap();
+    assert!(dir.join(LOCK_FILE).exists());
+    let lock = RunLock::acquire(&dir, "varpost resume x").unwrap();
+    let previous = lock.taken_over().expect("the stale lock is reported");
+    assert_eq!(previous.pid, Some(pid));
+    assert_eq!(previous.command, "varpost sample --out child");
+    assert!(lock.takeover_note().unwrap().contains("no longer running"));
+    drop(lock);
+    std::fs::remove_dir_all(&dir).unwrap();
 }
