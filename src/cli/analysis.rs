@@ -37,6 +37,7 @@ pub fn check(
     progress: Progress,
 ) -> Result<ExitCode> {
     let out = problem.out_dir("check");
+    let _lock = super::lock_folder(&out, "check")?;
     let loaded = pipeline::load(&problem.source(&out)?)?;
     println!(
         "gradient test: {} (n = {})",
@@ -59,6 +60,7 @@ pub fn check(
 pub fn map(problem: &ProblemArgs, lbfgs: &LbfgsArgs, progress: Progress) -> Result<ExitCode> {
     let cfg = lbfgs.config();
     let out = problem.out_dir("map");
+    let _lock = super::lock_folder(&out, "map")?;
     let loaded = pipeline::load(&problem.source(&out)?)?;
     println!(
         "analysis: {} (n = {})",
@@ -104,6 +106,7 @@ pub fn hessian(
         laplace: hessian.options(),
     };
     let out = problem.out_dir("hessian");
+    let _lock = super::lock_folder(&out, "hessian")?;
     let source = problem.source(&out)?;
     let loaded = pipeline::load(&source)?;
     println!(

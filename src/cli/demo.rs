@@ -12,6 +12,7 @@ use crate::sampler::SampleConfig;
 /// Runs the demo into `out` (an earlier demo's folder is replaced) and prints what each stage found.
 pub fn demo(out: &Path, progress: Progress) -> Result<ExitCode> {
     println!("varpost demo: the embedded Lorenz-96 scenario (invented; see demo-data/README.md)");
+    let _lock = super::lock_folder(out, "demo")?;
     // The demo samples with the default settings.
     let s = SampleConfig::default();
     let chains = ChainProgress::new(s.chains, s.warmup, s.iterations());

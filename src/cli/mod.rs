@@ -109,6 +109,26 @@ fn in_worker_pool<T: Send>(
     }
 }
 
+/// Takes the lock on an output folder before any model starts (released when the returned guard is
+/// dropped), and refuses a folder that holds a sampling run when `command` would overwrite it.
+fn lock_folder(dir: &std::path::Path, command: &str) -> Result<crate::output::lock::RunLock> {
+    let lock = crate::output::lock::RunLock::acquire(dir, &command_line())?;
+    if let Some(note) = lock.takeover_note() {
+        eprintln!("{note}");
+    }
+    let overwrites = matches!(command, "check" | "map" | "hessian" | "sample");
+    if overwrites && crate::config::RunConfig::exists_in(dir) {
+        return Err(Error::Config(format!(
+            "{} holds a sampling run: `varpost {command}` would overwrite its files. Continue that run \
+             with `varpost resume {}`, report on it with `varpost report {}`, or choose another --out",
+            dir.display(),
+            dir.display(),
+            dir.display()
+        )));
+    }
+    Ok(lock)
+}
+
 /// The command line as run, for the NetCDF history.
 fn command_line() -> String {
     std::env::args().collect::<Vec<_>>().join(" ")

@@ -23,6 +23,7 @@ pub fn sample(
     progress: Progress,
 ) -> Result<ExitCode> {
     let out = problem.out_dir("sample");
+    let _lock = super::lock_folder(&out, "sample")?;
     let map = lbfgs.config();
     let cfg = RunConfig {
         start: map.start,
@@ -48,6 +49,7 @@ pub fn sample(
 
 /// `varpost resume DIR`: continues the run recorded in DIR, optionally with another adapter command.
 pub fn resume(dir: &Path, adapter: Option<String>, progress: Progress) -> Result<ExitCode> {
+    let _lock = super::lock_folder(dir, "resume")?;
     let mut cfg = pipeline::read_run(dir)?;
     println!("resuming the run in {}", dir.display());
     match (&mut cfg.source, adapter) {

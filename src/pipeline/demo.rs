@@ -67,10 +67,16 @@ fn rmse(loaded: &Loaded, a: &[f64]) -> Option<f64> {
 }
 
 fn prepare_demo_folder(out: &Path) -> Result<()> {
-    let non_empty = out.exists()
-        && std::fs::read_dir(out)
-            .map(|mut d| d.next().is_some())
-            .unwrap_or(false);
+    let lock_file = std::ffi::OsStr::new(crate::output::lock::LOCK_FILE);
+    let entries: Vec<std::path::PathBuf> = match std::fs::read_dir(out) {
+        Ok(d) => d
+            .filter_map(|e| e.ok())
+            .filter(|e| e.file_name() != lock_file)
+            .map(|e| e.path())
+            .collect(),
+        Err(_) => Vec::new(),
+    };
+    let non_empty = !entries.is_empty();
     if non_empty {
         match Summary::read(out) {
             Ok(s)
@@ -79,7 +85,15 @@ fn prepare_demo_folder(out: &Path) -> Result<()> {
                         && s.problem == "lorenz96"
                         && out.join("demo.txt").exists() =>
             {
-                std::fs::remove_dir_all(out).map_err(|e| Error::io(out, e))?;
+                // Everything but the lock file, which the running demo holds.
+                for p in &entries {
+                    let r = if p.is_dir() {
+                        std::fs::remove_dir_all(p)
+                    } else {
+                        std::fs::remove_file(p)
+                    };
+                    r.map_err(|e| Error::io(p, e))?;
+                }
             }
             _ => {
                 return Err(Error::Config(format!(
