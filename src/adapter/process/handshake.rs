@@ -1,0 +1,127 @@
+//! The handshake: the adapter's hello line within the handshake timeout, the choice of encoding, and
+//! varpost's start line.
+
+use std::time::Instant;
+
+use super::pipes::{Framing, ReadOutcome};
+use super::terminate::{describe_status, TERM_GRACE};
+use super::{Worker, WorkerError, WorkerSpec};
+use crate::adapter::protocol::{self, Encoding, Hello};
+
+/// Which encoding to ask for after the handshake.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum EncodingChoice {
+    /// Binary for states of 1000 components or more when the adapter offers it, otherwise text when
+    /// offered, otherwise binary.
+    #[default]
+    Auto,
+    /// Text; an error if the adapter does not offer it.
+    Text,
+    /// Binary; an error if the adapter does not offer it.
+    Binary,
+}
+
+fn choose_encoding(choice: EncodingChoice, hello: &Hello) -> Result<Encoding, String> {
+    let offers = |e| hello.encodings.contains(&e);
+    let forced = match choice {
+        EncodingChoice::Text => Encoding::Text,
+        EncodingChoice::Binary => Encoding::Binary,
+        EncodingChoice::Auto => {
+            return Ok(
+                if offers(Encoding::Binary) && (hello.dim >= 1000 || !offers(Encoding::Text)) {
+                    Encoding::Binary
+                } else if offers(Encoding::Text) {
+                    Encoding::Text
+                } else {
+                    Encoding::Binary
+                },
+            )
+        }
+    };
+    if offers(forced) {
+        return Ok(forced);
+    }
+    let names: Vec<_> = hello.encodings.iter().map(|e| e.name()).collect();
+    Err(format!(
+        "the {} encoding was asked for but the adapter offers only: {}",
+        forced.name(),
+        names.join(", ")
+    ))
+}
+
+impl Worker {
+    /// Starts worker `index` (its `restart`-th restart; 0 for the first start) and does the handshake.
+    pub fn start(spec: &WorkerSpec, index: usize, restart: u32) -> Result<Worker, WorkerError> {
+        let mut w = Worker::spawn(spec, index, restart)?;
+        w.handshake(spec)?;
+        Ok(w)
+    }
+
+    fn handshake(&mut self, spec: &WorkerSpec) -> Result<(), WorkerError> {
+        let deadline = Instant::now() + spec.handshake_timeout;
+        let line = self.hello_line(spec, deadline)?;
+        let hello = match protocol::decode_hello(&line) {
+            Ok(h) => h,
+            Err(e) => return Err(self.refuse(&format!("failed the handshake: {e}"))),
+        };
+        let encoding = match choose_encoding(spec.encoding, &hello) {
+            Ok(e) => e,
+            Err(m) => return Err(self.refuse(&m)),
+        };
+        let sent = self
+            .pipes
+            .write_all(&protocol::encode_start(encoding), Some(deadline));
+        if !matches!(sent, Ok(true)) {
+            let status = self.reap_after_eof();
+            return Err(WorkerError::Start(self.describe(&format!(
+                "{} during the handshake",
+                describe_status(status)
+            ))));
+        }
+        self.started = true;
+        self.framing = match encoding {
+            Encoding::Text => Framing::Line {
+                max: protocol::max_text_line(hello.dim),
+            },
+            Encoding::Binary => Framing::Frame {
+                max_body: protocol::max_frame_body(hello.dim),
+            },
+        };
+        self.hello = hello;
+        self.encoding = encoding;
+        Ok(())
+    }
+
+    /// Stops the process and gives the start error `what`.
+    fn refuse(&mut self, what: &str) -> WorkerError {
+        self.stop(TERM_GRACE);
+        WorkerError::Start(self.describe(what))
+    }
+
+    /// The adapter's first line on stdout.
+    fn hello_line(&mut self, spec: &WorkerSpec, deadline: Instant) -> Result<Vec<u8>, WorkerError> {
+        match self.pipes.read_message(self.framing, Some(deadline)) {
+            ReadOutcome::Message(end) => {
+                let line = self.pipes.buf[..end].to_vec();
+                self.pipes.consume(end);
+                Ok(line)
+            }
+            ReadOutcome::Eof => {
+                // Gone before saying hello: a crash at start-up, which a new start may not repeat
+                // (e.g. a launcher that lost a race for its session directory).
+                let status = self.reap_after_eof();
+                Err(WorkerError::Died(self.describe(&format!(
+                    "{} before its hello line",
+                    describe_status(status)
+                ))))
+            }
+            ReadOutcome::Broken(m) => Err(self.refuse(&format!("sent no valid hello line: {m}"))),
+            ReadOutcome::Timeout => Err(self.refuse(&format!(
+                "sent no hello line within {:.1} s and was stopped (raise the handshake timeout if it \
+                 starts slowly, and check that it flushes stdout after the hello)",
+                spec.handshake_timeout.as_secs_f64()
+            ))),
+        }
+    }
+}
