@@ -4,7 +4,9 @@ J(x) = 1/2 sum_i (x_i - c_i)^2 / s_i^2 with c_i = i + 1 and s_i = 1 + i/2, i = 0
 
 Modes: ok, crash_once STATE_FILE, crash_always, segfault, hang, garbage, wrong_version, wrong_length,
 wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
-a NaN cost where 100 < x_0 <= 1000), slow_start.
+a NaN cost where 100 < x_0 <= 1000), slow_start, ignore_term (ignores SIGTERM, then hangs in its first
+evaluation). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
+in /proc) are ignored.
 """
 import json
 import os
@@ -41,7 +43,7 @@ def cost_grad(x):
     if mode == "segfault":
         print("about to fault", file=sys.stderr, flush=True)
         os.kill(os.getpid(), signal.SIGSEGV)
-    if mode == "hang":
+    if mode in ("hang", "ignore_term"):
         print("waiting forever", file=sys.stderr, flush=True)
         time.sleep(3600)
     if mode == "garbage":
@@ -81,6 +83,8 @@ if mode == "deaf":
 if mode == "stray_stdout":
     raw_out.write(b"Loading model fields...\n")
     raw_out.flush()
+if mode == "ignore_term":
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
 if mode == "slow_start":
     time.sleep(3600)
 

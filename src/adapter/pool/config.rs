@@ -82,6 +82,7 @@ impl AdapterConfig {
             log_dir: self.log_dir.clone(),
             handshake_timeout: self.handshake_timeout,
             encoding: self.encoding,
+            watchdog: None,
         })
     }
 }

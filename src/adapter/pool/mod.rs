@@ -22,7 +22,7 @@ use std::thread;
 pub use config::AdapterConfig;
 pub use prior::AdapterPrior;
 
-use crate::adapter::process::{Worker, WorkerError, WorkerSpec};
+use crate::adapter::process::{Watchdog, Worker, WorkerError, WorkerSpec};
 use crate::adapter::protocol::{Capabilities, Encoding, Op};
 use crate::error::{Error, EvalError, Result};
 use restart::{same_declaration, start_with_retries};
@@ -70,7 +70,14 @@ impl AdapterProblem {
     /// Starts `config.workers` adapter processes (in parallel), does each handshake, checks that they all
     /// declare the same problem, and fetches the background if the adapter offers a prior.
     pub fn start(config: &AdapterConfig) -> Result<AdapterProblem> {
-        let spec = config.spec()?;
+        let mut spec = config.spec()?;
+        let watchdog = Watchdog::start().map_err(|e| {
+            Error::Adapter(format!(
+                "cannot start the watchdog process (/bin/sh) that stops the adapters if varpost is \
+                 killed: {e}"
+            ))
+        })?;
+        spec.watchdog = Some(Arc::new(watchdog));
         let workers = start_workers(&spec, config)?;
         let hello = workers[0].hello().clone();
         let encoding = workers[0].encoding();

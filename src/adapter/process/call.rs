@@ -3,7 +3,7 @@
 use std::time::{Duration, Instant};
 
 use super::pipes::ReadOutcome;
-use super::terminate::{describe_status, wait_exit, TERM_GRACE};
+use super::terminate::{describe_end, wait_exit, TERM_GRACE};
 use super::{Worker, WorkerError};
 use crate::adapter::protocol::{self, Op, ProtocolError, Reply, Request};
 
@@ -67,10 +67,10 @@ impl Worker {
     }
 
     fn died(&mut self, op: Op) -> WorkerError {
-        let status = self.reap_after_eof();
+        let ended = self.reap_after_eof();
         WorkerError::Died(self.describe(&format!(
             "{} during a {} request",
-            describe_status(status),
+            describe_end(ended),
             op.name()
         )))
     }

@@ -4,7 +4,7 @@
 use std::time::Instant;
 
 use super::pipes::{Framing, ReadOutcome};
-use super::terminate::{describe_status, TERM_GRACE};
+use super::terminate::{describe_end, TERM_GRACE};
 use super::{Worker, WorkerError, WorkerSpec};
 use crate::adapter::protocol::{self, Encoding, Hello};
 
@@ -73,10 +73,10 @@ impl Worker {
             .pipes
             .write_all(&protocol::encode_start(encoding), Some(deadline));
         if !matches!(sent, Ok(true)) {
-            let status = self.reap_after_eof();
+            let ended = self.reap_after_eof();
             return Err(WorkerError::Start(self.describe(&format!(
                 "{} during the handshake",
-                describe_status(status)
+                describe_end(ended)
             ))));
         }
         self.started = true;
@@ -110,10 +110,10 @@ impl Worker {
             ReadOutcome::Eof => {
                 // Gone before saying hello: a crash at start-up, which a new start may not repeat
                 // (e.g. a launcher that lost a race for its session directory).
-                let status = self.reap_after_eof();
+                let ended = self.reap_after_eof();
                 Err(WorkerError::Died(self.describe(&format!(
                     "{} before its hello line",
-                    describe_status(status)
+                    describe_end(ended)
                 ))))
             }
             ReadOutcome::Broken(m) => Err(self.refuse(&format!("sent no valid hello line: {m}"))),

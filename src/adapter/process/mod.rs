@@ -6,15 +6,19 @@
 //! a silent adapter nor one that stops reading can block varpost past its timeout. Only stderr has a
 //! thread of its own, which copies it to the log file and keeps its last lines for error messages.
 //!
-//! Each adapter runs in a process group of its own, so that a launcher (`mpirun ...`) and everything it
-//! started can be signalled together, and so that the terminal's Ctrl-C reaches varpost only, which then
-//! shuts its adapters down in order. On Linux every adapter also gets SIGTERM from the kernel if varpost
-//! dies without that chance (the children are forked from one long-lived thread, since the kernel ties
-//! this signal to the forking thread). An adapter that sees end-of-file on its stdin must exit.
+//! Each adapter runs in a session (and so a process group) of its own, so that a launcher (`mpirun ...`)
+//! and everything it started — even ranks the launcher puts in process groups of their own — can be
+//! stopped together, and so that the terminal's Ctrl-C reaches varpost only, which then shuts its
+//! adapters down in order. Stopping is SIGTERM to the whole session, a short grace, then SIGKILL, on every
+//! path (quit, error, drop during a panic). If varpost dies without that chance (`kill -9`), the pool's
+//! watchdog process ends the sessions, and on Linux the process varpost started also gets SIGTERM from
+//! the kernel (the children are forked from one long-lived thread, since the kernel ties this signal to
+//! the forking thread). An adapter that sees end-of-file on its stdin must exit.
 //!
 //! Files: `command` (splitting the command line), `spawn` (starting the process), `handshake`,
 //! `pipes` (stdin/stdout with deadlines, cutting stdout into messages), `call` (one request within the
-//! evaluation timeout), `stderr` (the log and the last lines), `terminate` (stopping and reaping).
+//! evaluation timeout), `stderr` (the log and the last lines), `terminate` (stopping and reaping),
+//! `watchdog` (ending the sessions when varpost dies abruptly).
 
 mod call;
 mod command;
@@ -23,11 +27,13 @@ pub(crate) mod pipes;
 mod spawn;
 mod stderr;
 mod terminate;
+mod watchdog;
 
 use std::path::PathBuf;
 use std::process::Child;
-use std::thread::{self, JoinHandle};
-use std::time::{Duration, Instant};
+use std::sync::Arc;
+use std::thread::JoinHandle;
+use std::time::Duration;
 
 pub use command::split_command;
 pub use handshake::EncodingChoice;
@@ -35,6 +41,7 @@ pub use handshake::EncodingChoice;
 use super::protocol::{Encoding, Hello, ProtocolError};
 use pipes::{Framing, Pipes};
 use stderr::StderrTail;
+pub(crate) use watchdog::Watchdog;
 
 /// How to start one adapter process.
 #[derive(Debug, Clone)]
@@ -49,6 +56,9 @@ pub(crate) struct WorkerSpec {
     pub handshake_timeout: Duration,
     /// Encoding to ask for.
     pub encoding: EncodingChoice,
+    /// The pool's watchdog, told about every adapter session (none: only the parent-death signal
+    /// protects against varpost dying abruptly).
+    pub watchdog: Option<Arc<Watchdog>>,
 }
 
 impl WorkerSpec {
@@ -102,6 +112,7 @@ pub(crate) struct Worker {
     hello: Hello,
     encoding: Encoding,
     next_id: u64,
+    watchdog: Option<Arc<Watchdog>>,
 }
 
 impl Worker {
@@ -118,15 +129,7 @@ impl Worker {
     /// "the adapter `CMD` (worker i) WHAT; last lines of its stderr: ...".
     fn describe(&mut self, what: &str) -> String {
         // Let the stderr thread drain what the process wrote before it ended.
-        if let Some(h) = self.stderr_thread.take() {
-            let end = Instant::now() + Duration::from_millis(300);
-            while !h.is_finished() && Instant::now() < end {
-                thread::sleep(Duration::from_millis(5));
-            }
-            if !h.is_finished() {
-                self.stderr_thread = Some(h);
-            }
-        }
+        self.drain_stderr();
         let lines = self.tail.lines();
         let log = match &self.log_path {
             Some(p) => format!(" (full log: {})", p.display()),

@@ -8,11 +8,10 @@ use std::process::{Child, Command, Stdio};
 use std::sync::mpsc::{self, Sender, SyncSender};
 use std::sync::{Mutex, OnceLock};
 use std::thread;
-use std::time::Duration;
 
 use super::pipes::{Framing, Pipes};
 use super::stderr::{open_log, stderr_thread, StderrTail};
-use super::terminate::kill_and_reap;
+use super::terminate::{end_and_reap, TERM_GRACE};
 use super::{Worker, WorkerError, WorkerSpec};
 use crate::adapter::protocol::{self, Encoding, Hello};
 
@@ -56,27 +55,30 @@ fn spawn_child(cmd: Command) -> io::Result<Child> {
     }
 }
 
+/// The adapter's command: piped stdin, stdout and stderr, a session of its own (its pid is then its
+/// session and process group id), and on Linux SIGTERM when varpost dies.
 fn build_command(argv: &[String]) -> Command {
     let mut cmd = Command::new(&argv[0]);
     cmd.args(&argv[1..])
         .stdin(Stdio::piped())
         .stdout(Stdio::piped())
         .stderr(Stdio::piped());
-    cmd.process_group(0);
-    #[cfg(target_os = "linux")]
-    {
-        let parent = std::process::id();
-        // SAFETY: the closure runs in the forked child before exec and calls only async-signal-safe
-        // system calls (prctl, getppid, _exit).
-        unsafe {
-            cmd.pre_exec(move || {
-                libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGTERM as libc::c_ulong);
-                if libc::getppid() as u32 != parent {
-                    libc::_exit(1);
-                }
-                Ok(())
-            });
-        }
+    let parent = std::process::id();
+    // SAFETY: the closure runs in the forked child before exec and calls only async-signal-safe
+    // system calls (setsid, prctl, getppid, _exit).
+    unsafe {
+        cmd.pre_exec(move || {
+            if libc::setsid() < 0 {
+                return Err(io::Error::last_os_error());
+            }
+            #[cfg(target_os = "linux")]
+            libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGTERM as libc::c_ulong);
+            // varpost died between the fork and the line above: the signal will never come.
+            if libc::getppid() as u32 != parent {
+                libc::_exit(1);
+            }
+            Ok(())
+        });
     }
     cmd
 }
@@ -120,11 +122,14 @@ impl Worker {
                 spec.display, spec.argv[0]
             ))
         })?;
+        if let Some(w) = &spec.watchdog {
+            w.watch(child.id());
+        }
         enlarge_pipes(&child);
         let (stdin, stdout, stderr) =
             (child.stdin.take(), child.stdout.take(), child.stderr.take());
         let (Some(stdin), Some(stdout), Some(stderr)) = (stdin, stdout, stderr) else {
-            kill_and_reap(&mut child, Duration::ZERO);
+            end_and_reap(&mut child, TERM_GRACE, spec.watchdog.as_deref());
             return Err(WorkerError::Start(
                 "the adapter's pipes could not be set up".into(),
             ));
@@ -135,7 +140,7 @@ impl Worker {
             .name(format!("adapter-{index}-stderr"))
             .spawn(move || stderr_thread(stderr, log, t));
         let Ok(stderr_handle) = stderr_handle else {
-            kill_and_reap(&mut child, Duration::ZERO);
+            end_and_reap(&mut child, TERM_GRACE, spec.watchdog.as_deref());
             return Err(WorkerError::Start(
                 "could not start the thread draining the adapter's stderr".into(),
             ));
@@ -154,6 +159,7 @@ impl Worker {
             hello: placeholder_hello(),
             encoding: Encoding::Text,
             next_id: 1,
+            watchdog: spec.watchdog.clone(),
         })
     }
 }
