@@ -5,7 +5,7 @@ J(x) = 1/2 sum_i (x_i - c_i)^2 / s_i^2 with c_i = i + 1 and s_i = 1 + i/2, i = 0
 Modes: ok, crash_once STATE_FILE, crash_always, segfault, hang, garbage, wrong_version, wrong_length,
 wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
 a NaN cost where 100 < x_0 <= 1000), slow_start, ignore_term (ignores SIGTERM, then hangs in its first
-evaluation). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
+evaluation), huge_dim N (a hello declaring dimension N, written as given, e.g. 1e12). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
 in /proc) are ignored.
 """
 import json
@@ -70,6 +70,11 @@ def cost_grad(x):
 
 if mode == "wrong_version":
     raw_out.write(b'{"hello":"varpost-adapter","protocol":99,"dim":4}\n')
+    raw_out.flush()
+    sys.stdin.readline()
+    sys.exit(0)
+if mode == "huge_dim":
+    raw_out.write(b'{"hello":"varpost-adapter","protocol":1,"dim":%s}\n' % sys.argv[2].encode())
     raw_out.flush()
     sys.stdin.readline()
     sys.exit(0)

@@ -22,6 +22,23 @@ pub enum EncodingChoice {
     Binary,
 }
 
+/// Vectors of the adapter's dimension that one evaluation holds at once: the state, the request as
+/// sent, the reply as read, and the gradient decoded from it.
+const VECTORS_PER_EVALUATION: u128 = 4;
+
+/// Refuses a hello whose dimension this machine cannot hold, before anything of that size is allocated.
+fn fits_in_memory(hello: &Hello) -> crate::Result<()> {
+    let n = hello.dim as u128;
+    crate::resources::ensure_fits(
+        &format!(
+            "the adapter's state of {n} components (the \"dim\" of its hello), with its gradient and the \
+             two messages of one evaluation,"
+        ),
+        crate::resources::f64_bytes(n.saturating_mul(VECTORS_PER_EVALUATION)),
+        "check the dimension the adapter declares, or run on a machine with more memory",
+    )
+}
+
 fn choose_encoding(choice: EncodingChoice, hello: &Hello) -> Result<Encoding, String> {
     let offers = |e| hello.encodings.contains(&e);
     let forced = match choice {
@@ -65,6 +82,9 @@ impl Worker {
             Ok(h) => h,
             Err(e) => return Err(self.refuse(&format!("failed the handshake: {e}"))),
         };
+        if let Err(e) = fits_in_memory(&hello) {
+            return Err(self.refuse(&format!("failed the handshake: {e}")));
+        }
         let encoding = match choose_encoding(spec.encoding, &hello) {
             Ok(e) => e,
             Err(m) => return Err(self.refuse(&m)),

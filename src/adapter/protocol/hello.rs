@@ -12,6 +12,8 @@ use super::{
 struct HelloJson {
     hello: String,
     protocol: u64,
+    /// Read by [`hello_dim`] (a whole number, possibly written as `1e6`); replaced by 1 before the rest of
+    /// the hello is read.
     dim: usize,
     #[serde(default)]
     encodings: Option<Vec<String>>,
@@ -43,26 +45,25 @@ pub fn encode_hello(h: &Hello) -> Vec<u8> {
 /// encoding or capability, or names of the wrong length are errors that quote the line.
 pub fn decode_hello(line: &[u8]) -> Result<Hello, ProtocolError> {
     let line = trim_line(line);
-    let value = hello_value(line)?;
+    let mut value = hello_value(line)?;
+    let dim = hello_dim(&value, line)?;
+    value["dim"] = serde_json::Value::from(1u64);
     let j: HelloJson =
         serde_json::from_value(value).map_err(|e| malformed(format!("bad hello ({e})"), line))?;
     let encodings = hello_encodings(j.encodings.as_deref(), line)?;
     let offers = hello_offers(j.offers.as_deref(), line)?;
-    if j.dim == 0 {
-        return Err(malformed("the hello declares dimension 0", line));
-    }
     if let Some(names) = &j.names {
-        if names.len() != j.dim {
+        if names.len() != dim {
             return Err(ProtocolError::Length {
                 what: "component names in the hello",
-                expected: j.dim,
+                expected: dim,
                 got: names.len(),
             });
         }
     }
     Ok(Hello {
         protocol: PROTOCOL_VERSION,
-        dim: j.dim,
+        dim,
         encodings,
         offers,
         names: j.names,
@@ -87,6 +88,42 @@ fn hello_value(line: &[u8]) -> Result<serde_json::Value, ProtocolError> {
             line,
         )),
     }
+}
+
+/// The hello's `dim`: a whole number ≥ 1, written as an integer or as a number with an exponent
+/// (`1e6`, as some writers print whole numbers). Only its value is read here; whether the machine can
+/// hold a state that large is checked before anything of that size is allocated.
+fn hello_dim(value: &serde_json::Value, line: &[u8]) -> Result<usize, ProtocolError> {
+    let Some(dim) = value.get("dim") else {
+        return Err(malformed("the hello has no \"dim\" field", line));
+    };
+    if let Some(n) = dim.as_u64() {
+        return match usize::try_from(n) {
+            Ok(0) => Err(malformed("the hello declares dimension 0", line)),
+            Ok(n) => Ok(n),
+            Err(_) => Err(too_large(n as f64, line)),
+        };
+    }
+    match dim.as_f64() {
+        Some(v) if v >= 1.0 && v.fract() == 0.0 && v < usize::MAX as f64 => Ok(v as usize),
+        Some(v) if v >= 1.0 && v.fract() == 0.0 => Err(too_large(v, line)),
+        _ => Err(malformed(
+            "the hello's \"dim\" must be a whole number of at least 1 (the length of the control vector)",
+            line,
+        )),
+    }
+}
+
+/// A dimension beyond any address space.
+fn too_large(dim: f64, line: &[u8]) -> ProtocolError {
+    malformed(
+        format!(
+            "the hello declares dimension {dim:e}: one state vector of that length would need {} of \
+             memory, more than any machine has; check the \"dim\" the adapter prints",
+            crate::resources::format_bytes(crate::resources::f64_bytes(dim as u128))
+        ),
+        line,
+    )
 }
 
 fn hello_encodings(list: Option<&[String]>, line: &[u8]) -> Result<Vec<Encoding>, ProtocolError> {
@@ -169,4 +206,37 @@ pub fn decode_start(line: &[u8]) -> Result<Encoding, ProtocolError> {
     }
     Encoding::from_name(&j.encoding)
         .ok_or_else(|| malformed("unknown encoding in the start line", line))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn with_dim(dim: &str) -> Result<Hello, ProtocolError> {
+        decode_hello(
+            format!(r#"{{"hello":"varpost-adapter","protocol":1,"dim":{dim}}}"#).as_bytes(),
+        )
+    }
+
+    #[test]
+    fn huge_dimensions_are_read_without_allocating_and_impossible_ones_refused() {
+        assert_eq!(with_dim("4611686018427387904").unwrap().dim, 1 << 62);
+        assert_eq!(with_dim("1e12").unwrap().dim, 1_000_000_000_000);
+        assert_eq!(with_dim("40.0").unwrap().dim, 40);
+        let e = with_dim("1e30").unwrap_err().to_string();
+        assert!(
+            e.contains("1e30") && e.contains("more than any machine has"),
+            "{e}"
+        );
+        let e = with_dim("18446744073709551616").unwrap_err().to_string();
+        assert!(e.contains("more than any machine has"), "{e}");
+        for bad in ["0", "-3", "2.5", "\"40\"", "null", "[4]"] {
+            let e = with_dim(bad).unwrap_err().to_string();
+            assert!(e.contains("dim") || e.contains("dimension 0"), "{bad}: {e}");
+        }
+        let e = decode_hello(br#"{"hello":"varpost-adapter","protocol":1}"#)
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("no \"dim\" field"), "{e}");
+    }
 }
