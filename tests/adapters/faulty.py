@@ -5,7 +5,9 @@ J(x) = 1/2 sum_i (x_i - c_i)^2 / s_i^2 with c_i = i + 1 and s_i = 1 + i/2, i = 0
 Modes: ok, crash_once STATE_FILE, crash_always, segfault, hang, garbage, wrong_version, wrong_length,
 wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
 a NaN cost where 100 < x_0 <= 1000), slow_start, ignore_term (ignores SIGTERM, then hangs in its first
-evaluation), huge_dim N (a hello declaring dimension N, written as given, e.g. 1e12). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
+evaluation), huge_dim N (a hello declaring dimension N, written as given, e.g. 1e12), close_stdout
+(closes its stdout in its first evaluation and keeps running), close_stdout_exit (closes its stdout in
+its first evaluation, then exits with status 4). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
 in /proc) are ignored.
 """
 import json
@@ -46,6 +48,11 @@ def cost_grad(x):
     if mode in ("hang", "ignore_term"):
         print("waiting forever", file=sys.stderr, flush=True)
         time.sleep(3600)
+    if mode in ("close_stdout", "close_stdout_exit"):
+        print("closing stdout", file=sys.stderr, flush=True)
+        os.close(1)
+        time.sleep(0.2 if mode == "close_stdout_exit" else 3600)
+        os._exit(4)
     if mode == "garbage":
         raw_out.write(b"Iteration 1: residual 0.5\n")
         raw_out.flush()

@@ -366,3 +366,28 @@ fn a_hello_declaring_a_huge_dimension_is_refused_with_the_memory_it_would_need()
         .to_string();
     assert!(e.contains("more than any machine has"), "{e}");
 }
+
+#[test]
+fn an_adapter_closing_its_stdout_is_reported_as_such_not_as_killed_by_varpost() {
+    let mut c = config("close_stdout");
+    c.max_restarts = 0;
+    let p = start(&c);
+    let m = failed_message(p.cost_grad(&[0.0; 4], &mut [0.0; 4]).unwrap_err());
+    assert!(
+        m.contains("closed its output (stdout) during a cost_grad request")
+            && m.contains("still running")
+            && m.contains("closing stdout"),
+        "{m}"
+    );
+    assert!(!m.contains("SIGTERM") && !m.contains("signal"), "{m}");
+    let mut c = config("close_stdout_exit");
+    c.max_restarts = 0;
+    let p = start(&c);
+    let m = failed_message(p.cost_grad(&[0.0; 4], &mut [0.0; 4]).unwrap_err());
+    assert!(
+        m.contains(
+            "closed its output (stdout) during a cost_grad request and exited with status 4"
+        ),
+        "{m}"
+    );
+}

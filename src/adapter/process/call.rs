@@ -3,7 +3,7 @@
 use std::time::{Duration, Instant};
 
 use super::pipes::ReadOutcome;
-use super::terminate::{describe_end, wait_exit, TERM_GRACE};
+use super::terminate::{closed_output, wait_exit, TERM_GRACE};
 use super::{Worker, WorkerError};
 use crate::adapter::protocol::{self, Op, ProtocolError, Reply, Request};
 
@@ -68,11 +68,8 @@ impl Worker {
 
     fn died(&mut self, op: Op) -> WorkerError {
         let ended = self.reap_after_eof();
-        WorkerError::Died(self.describe(&format!(
-            "{} during a {} request",
-            describe_end(ended),
-            op.name()
-        )))
+        let when = format!("during a {} request", op.name());
+        WorkerError::Died(self.describe(&closed_output(ended, &when)))
     }
 
     fn protocol_failure(&mut self, op: Op, e: ProtocolError) -> WorkerError {

@@ -4,7 +4,7 @@
 use std::time::Instant;
 
 use super::pipes::{Framing, ReadOutcome};
-use super::terminate::{describe_end, TERM_GRACE};
+use super::terminate::{closed_output, describe_end, TERM_GRACE};
 use super::{Worker, WorkerError, WorkerSpec};
 use crate::adapter::protocol::{self, Encoding, Hello};
 
@@ -131,10 +131,9 @@ impl Worker {
                 // Gone before saying hello: a crash at start-up, which a new start may not repeat
                 // (e.g. a launcher that lost a race for its session directory).
                 let ended = self.reap_after_eof();
-                Err(WorkerError::Died(self.describe(&format!(
-                    "{} before its hello line",
-                    describe_end(ended)
-                ))))
+                Err(WorkerError::Died(
+                    self.describe(&closed_output(ended, "before its hello line")),
+                ))
             }
             ReadOutcome::Broken(m) => Err(self.refuse(&format!("sent no valid hello line: {m}"))),
             ReadOutcome::Timeout => Err(self.refuse(&format!(

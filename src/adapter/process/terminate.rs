@@ -170,6 +170,22 @@ pub(super) fn describe_end(ended: Ended) -> String {
     }
 }
 
+/// "closed its output (stdout) WHEN and exited with status 3", or, when it had to be stopped, "... but
+/// was still running N s later, so varpost stopped it".
+pub(super) fn closed_output(ended: Ended, when: &str) -> String {
+    if ended.stopped {
+        format!(
+            "closed its output (stdout) {when} but was still running {} s later, so varpost stopped it",
+            EOF_WAIT.as_secs_f64()
+        )
+    } else {
+        format!(
+            "closed its output (stdout) {when} and {}",
+            describe_status(ended.status)
+        )
+    }
+}
+
 fn signal_name(sig: i32) -> &'static str {
     match sig {
         libc::SIGHUP => "SIGHUP",
