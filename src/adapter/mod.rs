@@ -2,7 +2,7 @@
 //! the varpost adapter protocol over stdin/stdout, seen by the rest of the crate as a [`Problem`].
 //!
 //! - [`protocol`]: the messages and their text and binary encodings (no I/O);
-//! - [`process`]: one adapter process (spawn, handshake, pipe threads, timeouts, stopping);
+//! - [`process`]: one adapter process (spawn, handshake, pipes, timeouts, stderr log, stopping);
 //! - [`pool`]: K processes as one [`AdapterProblem`], with restarts and an optional prior.
 //!
 //! The protocol is specified for adapter authors in `adapters/PROTOCOL.md`.

@@ -4,7 +4,11 @@ J(x) = 1/2 sum_i (x_i - c_i)^2 / s_i^2 with c_i = i + 1 and s_i = 1 + i/2, i = 0
 
 Modes: ok, crash_once STATE_FILE, crash_always, segfault, hang, garbage, wrong_version, wrong_length,
 wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fatal one where x_0 > 1000,
-a NaN cost where 100 < x_0 <= 1000), slow_start.
+a NaN cost where 100 < x_0 <= 1000), slow_start, ignore_term (ignores SIGTERM, then hangs in its first
+evaluation), huge_dim N (a hello declaring dimension N, written as given, e.g. 1e12), close_stdout
+(closes its stdout in its first evaluation and keeps running), close_stdout_exit (closes its stdout in
+its first evaluation, then exits with status 4). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
+in /proc) are ignored.
 """
 import json
 import os
@@ -41,9 +45,14 @@ def cost_grad(x):
     if mode == "segfault":
         print("about to fault", file=sys.stderr, flush=True)
         os.kill(os.getpid(), signal.SIGSEGV)
-    if mode == "hang":
+    if mode in ("hang", "ignore_term"):
         print("waiting forever", file=sys.stderr, flush=True)
         time.sleep(3600)
+    if mode in ("close_stdout", "close_stdout_exit"):
+        print("closing stdout", file=sys.stderr, flush=True)
+        os.close(1)
+        time.sleep(0.2 if mode == "close_stdout_exit" else 3600)
+        os._exit(4)
     if mode == "garbage":
         raw_out.write(b"Iteration 1: residual 0.5\n")
         raw_out.flush()
@@ -71,6 +80,11 @@ if mode == "wrong_version":
     raw_out.flush()
     sys.stdin.readline()
     sys.exit(0)
+if mode == "huge_dim":
+    raw_out.write(b'{"hello":"varpost-adapter","protocol":1,"dim":%s}\n' % sys.argv[2].encode())
+    raw_out.flush()
+    sys.stdin.readline()
+    sys.exit(0)
 if mode == "deaf":
     # Declares a large state, then never reads a request: varpost's write must not block past its timeout.
     raw_out.write(b'{"hello":"varpost-adapter","protocol":1,"dim":3000000,"encodings":["binary"]}\n')
@@ -81,6 +95,8 @@ if mode == "deaf":
 if mode == "stray_stdout":
     raw_out.write(b"Loading model fields...\n")
     raw_out.flush()
+if mode == "ignore_term":
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
 if mode == "slow_start":
     time.sleep(3600)
 

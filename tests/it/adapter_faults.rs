@@ -342,3 +342,52 @@ fn an_adapter_that_stops_reading_cannot_block_a_large_request() {
         "{m}"
     );
 }
+
+#[test]
+fn a_hello_declaring_a_huge_dimension_is_refused_with_the_memory_it_would_need() {
+    // 2^62 components and 1e12 (written with an exponent): refused at the handshake, before any vector of
+    // that length exists, with the amount of memory named.
+    for (dim, unit) in [("4611686018427387904", "PiB"), ("1e12", "TiB")] {
+        let e = AdapterProblem::start(&config(&format!("huge_dim {dim}")))
+            .err()
+            .expect("refused")
+            .to_string();
+        assert!(
+            e.contains("would need")
+                && e.contains(unit)
+                && e.contains("dim")
+                && e.contains("huge_dim"),
+            "{e}"
+        );
+    }
+    let e = AdapterProblem::start(&config("huge_dim 1e30"))
+        .err()
+        .expect("refused")
+        .to_string();
+    assert!(e.contains("more than any machine has"), "{e}");
+}
+
+#[test]
+fn an_adapter_closing_its_stdout_is_reported_as_such_not_as_killed_by_varpost() {
+    let mut c = config("close_stdout");
+    c.max_restarts = 0;
+    let p = start(&c);
+    let m = failed_message(p.cost_grad(&[0.0; 4], &mut [0.0; 4]).unwrap_err());
+    assert!(
+        m.contains("closed its output (stdout) during a cost_grad request")
+            && m.contains("still running")
+            && m.contains("closing stdout"),
+        "{m}"
+    );
+    assert!(!m.contains("SIGTERM") && !m.contains("signal"), "{m}");
+    let mut c = config("close_stdout_exit");
+    c.max_restarts = 0;
+    let p = start(&c);
+    let m = failed_message(p.cost_grad(&[0.0; 4], &mut [0.0; 4]).unwrap_err());
+    assert!(
+        m.contains(
+            "closed its output (stdout) during a cost_grad request and exited with status 4"
+        ),
+        "{m}"
+    );
+}

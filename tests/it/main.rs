@@ -4,6 +4,7 @@ mod adapter_cli;
 mod adapter_examples;
 mod adapter_faults;
 mod adapter_map;
+mod adapter_orphans;
 mod adapter_protocol;
 mod adapter_python;
 mod cli_core;
