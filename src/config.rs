@@ -198,12 +198,17 @@ impl RunConfig {
             )));
         }
         let text = crate::resources::read_bounded(&p, 64 << 20)?;
-        let mut v: Value = serde_json::from_str(&text)
-            .map_err(|e| Error::format(&p, format!("not a varpost run record: {e}")))?;
+        RunConfig::from_text(&text, &p)
+    }
+
+    /// Decodes the text of a run record (`p` names it in errors).
+    fn from_text(text: &str, p: &Path) -> Result<RunConfig> {
+        let mut v: Value = serde_json::from_str(text)
+            .map_err(|e| Error::format(p, format!("not a varpost run record: {e}")))?;
         let version = v.get("version").and_then(Value::as_u64).unwrap_or(1);
         if version > RUN_RECORD_VERSION as u64 {
             return Err(Error::format(
-                &p,
+                p,
                 format!(
                     "run record version {version} was written by a newer varpost (this one reads up to {RUN_RECORD_VERSION}): use that release"
                 ),
@@ -213,10 +218,10 @@ impl RunConfig {
             upgrade_v1(&mut v);
         }
         let mut cfg: RunConfig = serde_json::from_value(v)
-            .map_err(|e| Error::format(&p, format!("not a varpost run record: {e}")))?;
+            .map_err(|e| Error::format(p, format!("not a varpost run record: {e}")))?;
         cfg.version = RUN_RECORD_VERSION;
         cfg.validate()
-            .map_err(|e| Error::format(&p, format!("the recorded settings are not valid: {e}")))?;
+            .map_err(|e| Error::format(p, format!("the recorded settings are not valid: {e}")))?;
         Ok(cfg)
     }
 }
@@ -312,5 +317,36 @@ mod tests {
             .unwrap_err()
             .to_string()
             .contains("at least 50"));
+    }
+
+    /// Run records: the first release's record and the current one, mutated, must never panic the
+    /// decoder (ignored by default; `bash benches/fuzz.sh`).
+    #[test]
+    #[ignore]
+    fn fuzz_run_record_reader() {
+        use rand::SeedableRng;
+        let v1 = include_bytes!("../tests/it/fixtures/run-v1.json").to_vec();
+        let mut current = RunConfig::new(ProblemSource::Builtin {
+            name: "lorenz96".into(),
+            settings: vec!["n=40".into()],
+        });
+        current.sampler.independence.t_dof = Some(5.0);
+        let v2 = serde_json::to_vec_pretty(&current).unwrap();
+        let corpus = vec![v1, v2];
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(20);
+        let p = Path::new("run.json");
+        crate::util::fuzz::run(
+            "run record",
+            crate::util::fuzz::INPUTS,
+            &mut rng,
+            |r| {
+                let base = &corpus[rand::RngExt::random_range(r, 0..corpus.len())];
+                crate::util::fuzz::mutate(r, base, &corpus)
+            },
+            |b| {
+                let text = String::from_utf8_lossy(b);
+                RunConfig::from_text(&text, p).is_ok()
+            },
+        );
     }
 }

@@ -413,3 +413,35 @@ fn without_out_each_subcommand_writes_to_a_folder_named_after_it() {
     assert!(String::from_utf8_lossy(&o.stdout).starts_with("output folder: mine\n"));
     assert!(d.join("mine/summary.json").exists());
 }
+
+/// A folder locked by a live run is refused before any model starts, naming the run that holds it
+/// (common practice, no source: one writer per output folder).
+#[test]
+fn a_locked_folder_is_refused_naming_the_holder() {
+    let d = temp_dir("locked-folder");
+    let lock = varpost::output::lock::RunLock::acquire(&d, "a test holding the folder").unwrap();
+    let o = run(&["map", "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{e}");
+    assert!(e.contains(&std::process::id().to_string()), "{e}");
+    assert!(!d.join("summary.json").exists(), "the refused run wrote its summary");
+    drop(lock);
+    let o = run(&["map", "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(!d.join(".varpost.lock").exists(), "the lock is released on exit");
+}
+
+/// `map`, `check`, `hessian` and `sample` refuse a folder that holds a sampling run instead of
+/// overwriting its summary (the run record here is the first release's, tests/it/fixtures/run-v1.json).
+#[test]
+fn a_sampling_run_is_not_overwritten() {
+    let d = temp_dir("holds-a-run");
+    std::fs::copy(common::root().join("tests/it/fixtures/run-v1.json"), d.join("run.json")).unwrap();
+    for cmd in ["map", "check", "hessian", "sample"] {
+        let o = run(&[cmd, "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+        let e = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{cmd}: {e}");
+        assert!(e.contains("holds a sampling run") && e.contains("varpost resume"), "{cmd}: {e}");
+        assert!(!d.join("summary.json").exists(), "{cmd} wrote a summary");
+    }
+}

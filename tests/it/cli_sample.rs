@@ -350,7 +350,7 @@ fn bad_sampling_input_gives_clear_errors() {
     assert!(s["posterior"].is_object());
     check(
         &["sample", "--problem", "linear-gaussian", "--out", o_s],
-        "already holds a sampling run",
+        "holds a sampling run",
     );
     // A corrupt checkpoint is refused, never silently restarted.
     let ck = out.join("checkpoint.vpck");

@@ -506,7 +506,7 @@ fn reference_run_of(name: &str, g: Gaussian, cfg: &SampleConfig) -> (PathBuf, Sa
 /// Writes `payload` as the checkpoint of `dir` with a correct checksum (as a careful hand edit would).
 fn write_with_checksum(dir: &Path, payload: &serde_json::Value) {
     let body = serde_json::to_vec(payload).unwrap();
-    let mut h = varpost::hash::Fnv64::new();
+    let mut h = varpost::sampler::target::Fnv64::new();
     h.write(&body);
     let mut bytes = format!("varpost-checkpoint 1 fnv1a64={:016x}\n", h.finish()).into_bytes();
     bytes.extend_from_slice(&body);

@@ -1,0 +1,7 @@
+#!/usr/bin/env bash
+# In-process fuzzing of every decoder of outside input: the ignored unit tests named fuzz_* (protocol
+# messages, hello, checkpoints, draws files, evaluation records, run records), one million generated or
+# mutated inputs each, in release mode. Not part of the quick test run.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+cargo test --release --lib -- --ignored fuzz_ --nocapture --test-threads 1
