@@ -83,6 +83,7 @@ impl AdapterConfig {
             handshake_timeout: self.handshake_timeout,
             encoding: self.encoding,
             watchdog: None,
+            logs: Default::default(),
         })
     }
 }
