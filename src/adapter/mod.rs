@@ -13,6 +13,6 @@ pub mod pool;
 pub mod process;
 pub mod protocol;
 
-pub use pool::{AdapterConfig, AdapterPrior, AdapterProblem};
+pub use pool::{timeout_from_secs, AdapterConfig, AdapterPrior, AdapterProblem};
 pub use process::{split_command, EncodingChoice};
 pub use protocol::{Encoding, PROTOCOL_VERSION};

@@ -53,6 +53,11 @@ def cost_grad(x):
         os.close(1)
         time.sleep(0.2 if mode == "close_stdout_exit" else 3600)
         os._exit(4)
+    if mode == "chatty" and calls[0] == 1:
+        err = sys.stderr.buffer
+        for k in range(int(sys.argv[2]) * 1024 * 1024 // 100):
+            err.write(b"chatty line %08d " % k + b"." * 78 + b"\n")
+        err.flush()
     if mode == "garbage":
         raw_out.write(b"Iteration 1: residual 0.5\n")
         raw_out.flush()

@@ -391,3 +391,53 @@ fn an_adapter_closing_its_stdout_is_reported_as_such_not_as_killed_by_varpost() 
         "{m}"
     );
 }
+
+/// Splits a log into (head, dropped byte count, tail) at varpost's note.
+fn log_parts(log: &[u8]) -> (&[u8], u64, &[u8]) {
+    let mark = b"\n[varpost] ";
+    let at = log
+        .windows(mark.len())
+        .position(|w| w == mark)
+        .expect("the log has a note on dropped bytes");
+    let rest = &log[at + mark.len()..];
+    let end = rest.iter().position(|&b| b == b'\n').unwrap();
+    let note = String::from_utf8_lossy(&rest[..end]);
+    let dropped = note.split(' ').next().unwrap().parse().unwrap();
+    (&log[..at], dropped, &rest[end + 1..])
+}
+
+#[test]
+fn a_chatty_adapter_cannot_make_its_log_grow_without_bound() {
+    use varpost::adapter::process::{LOG_HEAD, LOG_TAIL};
+    let log_dir = std::env::temp_dir().join(format!("varpost-chatty-logs-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&log_dir);
+    let mut c = config("chatty 24");
+    c.log_dir = Some(log_dir.clone());
+    let p = start(&c);
+    let mut g = vec![0.0; 4];
+    let x = [0.5, 1.0, -2.0, 3.0];
+    assert!(rel(p.cost_grad(&x, &mut g).unwrap(), quadratic(&x).0) < 1e-12);
+    drop(p);
+    // What the adapter wrote: 24 MiB of numbered 100-byte lines (tests/adapters/faulty.py, mode chatty).
+    let lines = 24 * 1024 * 1024 / 100;
+    let mut all = Vec::with_capacity(lines * 100);
+    for k in 0..lines {
+        all.extend_from_slice(format!("chatty line {k:08} {}\n", ".".repeat(78)).as_bytes());
+    }
+    let log = std::fs::read(log_dir.join("adapter-0.log")).unwrap();
+    assert!(
+        log.len() as u64 <= LOG_HEAD + 2 * LOG_TAIL + 512,
+        "log of {} bytes",
+        log.len()
+    );
+    let (head, dropped, tail) = log_parts(&log);
+    assert_eq!(head, &all[..LOG_HEAD as usize], "the head is the start");
+    assert!(all.ends_with(tail), "the tail is the end");
+    assert!(tail.len() as u64 >= LOG_TAIL);
+    assert_eq!(
+        head.len() + dropped as usize + tail.len(),
+        all.len(),
+        "the note counts the dropped bytes"
+    );
+    let _ = std::fs::remove_dir_all(&log_dir);
+}

@@ -19,7 +19,7 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Condvar, Mutex};
 use std::thread;
 
-pub use config::AdapterConfig;
+pub use config::{timeout_from_secs, AdapterConfig, MAX_RESTARTS, MAX_TIMEOUT_SECS, MAX_WORKERS};
 pub use prior::AdapterPrior;
 
 use crate::adapter::process::{Watchdog, Worker, WorkerError, WorkerSpec};
@@ -70,6 +70,7 @@ impl AdapterProblem {
     /// Starts `config.workers` adapter processes (in parallel), does each handshake, checks that they all
     /// declare the same problem, and fetches the background if the adapter offers a prior.
     pub fn start(config: &AdapterConfig) -> Result<AdapterProblem> {
+        config.validate()?;
         let mut spec = config.spec()?;
         let watchdog = Watchdog::start().map_err(|e| {
             Error::Adapter(format!(
@@ -92,7 +93,7 @@ impl AdapterProblem {
             .rev()
             .collect();
         let pool = Arc::new(Pool {
-            eval_timeout: config.eval_timeout,
+            eval_timeout: config.eval_limit(),
             max_restarts: config.max_restarts,
             workers: config.workers,
             hello,

@@ -20,7 +20,7 @@ impl Worker {
         self.next_id += 1;
         self.out.clear();
         protocol::encode_request(self.encoding, id, req, &mut self.out);
-        let deadline = timeout.map(|t| Instant::now() + t);
+        let deadline = timeout.and_then(|t| Instant::now().checked_add(t));
         let outcome = match self.pipes.write_all(&self.out, deadline) {
             Ok(true) => self.pipes.read_message(self.framing, deadline),
             Ok(false) => ReadOutcome::Timeout,

@@ -1,7 +1,9 @@
 //! The handshake: the adapter's hello line within the handshake timeout, the choice of encoding, and
 //! varpost's start line.
 
-use std::time::Instant;
+use std::time::{Duration, Instant};
+
+use crate::adapter::pool::MAX_TIMEOUT_SECS;
 
 use super::pipes::{Framing, ReadOutcome};
 use super::terminate::{closed_output, describe_end, TERM_GRACE};
@@ -78,7 +80,10 @@ impl Worker {
     }
 
     fn handshake(&mut self, spec: &WorkerSpec) -> Result<(), WorkerError> {
-        let deadline = Instant::now() + spec.handshake_timeout;
+        // Validated to at most MAX_TIMEOUT_SECS; saturated all the same, never a panic.
+        let deadline = Instant::now()
+            .checked_add(spec.handshake_timeout)
+            .unwrap_or_else(|| Instant::now() + Duration::from_secs(MAX_TIMEOUT_SECS));
         let line = self.hello_line(spec, deadline)?;
         let hello = match protocol::decode_hello(&line) {
             Ok(h) => h,

@@ -23,22 +23,26 @@
 mod call;
 mod command;
 mod handshake;
+mod log;
 pub(crate) mod pipes;
 mod spawn;
 mod stderr;
 mod terminate;
 mod watchdog;
 
+use std::collections::HashMap;
 use std::path::PathBuf;
 use std::process::Child;
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
 use std::time::Duration;
 
 pub use command::split_command;
 pub use handshake::EncodingChoice;
+pub use log::{LOG_HEAD, LOG_TAIL};
 
 use super::protocol::{Encoding, Hello, ProtocolError};
+use log::{LimitedLog, SharedLog};
 use pipes::{Framing, Pipes};
 use stderr::StderrTail;
 pub(crate) use watchdog::Watchdog;
@@ -59,6 +63,8 @@ pub(crate) struct WorkerSpec {
     /// The pool's watchdog, told about every adapter session (none: only the parent-death signal
     /// protects against varpost dying abruptly).
     pub watchdog: Option<Arc<Watchdog>>,
+    /// The logs of the worker places opened so far, shared by the processes each place starts.
+    pub logs: Arc<Mutex<HashMap<usize, SharedLog>>>,
 }
 
 impl WorkerSpec {
@@ -67,6 +73,23 @@ impl WorkerSpec {
         self.log_dir
             .as_ref()
             .map(|d| d.join(format!("adapter-{index}.log")))
+    }
+
+    /// The log of worker `index`: created (emptied) at its first start, shared after that.
+    fn log(&self, index: usize) -> Result<Option<SharedLog>, String> {
+        let Some(path) = self.log_path(index) else {
+            return Ok(None);
+        };
+        let mut logs = self
+            .logs
+            .lock()
+            .map_err(|_| "the adapter logs' lock is poisoned".to_string())?;
+        if let Some(l) = logs.get(&index) {
+            return Ok(Some(l.clone()));
+        }
+        let l = LimitedLog::shared(&path)?;
+        logs.insert(index, l.clone());
+        Ok(Some(l))
     }
 }
 

@@ -10,7 +10,7 @@ use std::sync::{Mutex, OnceLock};
 use std::thread;
 
 use super::pipes::{Framing, Pipes};
-use super::stderr::{open_log, stderr_thread, StderrTail};
+use super::stderr::{stderr_thread, StderrTail};
 use super::terminate::{end_and_reap, TERM_GRACE};
 use super::{Worker, WorkerError, WorkerSpec};
 use crate::adapter::protocol::{self, Encoding, Hello};
@@ -112,10 +112,18 @@ impl Worker {
             return Err(WorkerError::Start("the adapter command is empty".into()));
         }
         let log_path = spec.log_path(index);
-        let log = match &log_path {
-            Some(p) => Some(open_log(p, restart).map_err(WorkerError::Start)?),
-            None => None,
-        };
+        let log = spec.log(index).map_err(WorkerError::Start)?;
+        if let (Some(l), true) = (&log, restart > 0) {
+            if let Ok(mut l) = l.lock() {
+                l.write(
+                    format!(
+                        "[varpost] --- adapter restarted (start {}) ---\n",
+                        restart + 1
+                    )
+                    .as_bytes(),
+                );
+            }
+        }
         let mut child = spawn_child(build_command(&spec.argv)).map_err(|e| {
             WorkerError::Start(format!(
                 "cannot start the adapter `{}`: {e} (is `{}` installed and on PATH, or given with its path?)",
