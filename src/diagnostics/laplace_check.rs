@@ -3,29 +3,67 @@
 
 use serde::Serialize;
 
+use super::verdict::KHAT_LIMIT;
 use crate::error::{Error, Result};
+
+/// Fewest draws in the tail for the generalized Pareto fit (as ArviZ requires: more than 4).
+pub const MIN_TAIL_DRAWS: usize = 5;
+
+/// Relative size, against the largest |log target| or |log proposal| (and at least 1), below which the
+/// spread of the log weights counts as rounding: the weights are then equal and the proposal is the
+/// target up to a constant.
+pub const EQUAL_WEIGHTS_RTOL: f64 = 1e-9;
 
 /// Outcome of [`importance_check`].
 #[derive(Debug, Clone, Serialize)]
 pub struct ImportanceCheck {
-    /// Pareto k-hat of the importance weights: +∞ when the tail is too short to fit (fewer than 5 draws
-    /// beyond the cut-off, as ArviZ reports it), −∞ when all weights are equal (the proposal is the
-    /// target up to a constant, as for a linear-Gaussian problem; ArviZ reports +∞ there because its
-    /// tail is empty, which would wrongly fail an exact approximation).
+    /// Pareto k-hat of the importance weights; −∞ when all weights are equal to rounding (the proposal
+    /// is the target up to a constant, as for a linear-Gaussian problem; ArviZ reports +∞ there because
+    /// its tail is empty, which would wrongly fail an exact approximation); NaN when it cannot be
+    /// estimated (too few draws or too few distinct large weights for the tail fit: see `khat_note`).
     pub khat: f64,
-    /// The k-hat below which the weighted estimates are reliable: min(1 − 1/log10(S), 0.7).
+    /// The k-hat below which the weighted estimates are reliable: [`khat_threshold`] of the draws.
     pub khat_threshold: f64,
+    /// Why k-hat is −∞ or NaN, in words for the user (with the number of draws needed where that is
+    /// the cause); `None` when k-hat is an estimate.
+    pub khat_note: Option<String>,
     /// Kish effective sample size (Σ w)² / Σ w² of the raw (unsmoothed) weights, between 1 and S.
     pub kish_ess: f64,
-    /// Pareto-smoothed weights, normalised to sum to 1, in the order of the draws given.
+    /// Pareto-smoothed weights, normalised to sum to 1, in the order of the draws given (the raw
+    /// weights, normalised, where k-hat could not be estimated).
     pub smoothed_weights: Vec<f64>,
 }
 
 impl ImportanceCheck {
-    /// Whether k-hat is below the reliability threshold.
+    /// Whether k-hat is below the reliability threshold (false when it could not be estimated).
     pub fn reliable(&self) -> bool {
         self.khat < self.khat_threshold
     }
+
+    /// The number of draws S.
+    pub fn draws(&self) -> usize {
+        self.smoothed_weights.len()
+    }
+}
+
+/// The k-hat below which importance-sampling estimates from S draws are reliable:
+/// min(1 − 1/log10(S), 0.7) — Vehtari, Simpson, Gelman, Yao & Gabry 2024, "Pareto smoothed importance
+/// sampling", JMLR 25, section 3 (0.7 from S = 2155 draws on, as 10^(10/3) ≈ 2154.4). The one place the threshold is computed.
+pub fn khat_threshold(draws: usize) -> f64 {
+    (1.0 - 1.0 / (draws as f64).log10()).min(KHAT_LIMIT)
+}
+
+/// Draws in the tail fitted by PSIS: ⌈min(0.2 S, 3 √S)⌉ (Vehtari et al. 2024, section 3).
+fn tail_len(draws: usize) -> usize {
+    let s = draws as f64;
+    (s / 5.0).min(3.0 * s.sqrt()).ceil() as usize
+}
+
+/// Fewest draws S whose tail holds [`MIN_TAIL_DRAWS`] draws: below it k-hat cannot be estimated.
+pub fn min_draws_for_khat() -> usize {
+    (2..)
+        .find(|&s| tail_len(s) >= MIN_TAIL_DRAWS)
+        .unwrap_or(usize::MAX)
 }
 
 /// Importance weights w_s = π(x_s) / q(x_s) of S draws x_s from a proposal q, given per draw the
@@ -35,11 +73,16 @@ impl ImportanceCheck {
 /// Computes the Kish effective sample size (Σ w)² / Σ w² — Kish 1965, Survey Sampling — and Pareto
 /// smoothed importance sampling (PSIS) — Vehtari, Simpson, Gelman, Yao & Gabry 2024, "Pareto smoothed
 /// importance sampling", JMLR 25: the M = ⌈min(0.2 S, 3 √S)⌉ largest weights are fitted with a
-/// generalized Pareto distribution above the (M + 1)-th largest weight (Zhang & Stephens 2009 with a weakly informative prior on the shape); its
-/// shape is k-hat; those weights are replaced by the fitted quantiles at (i − 1/2) / M, capped at the
-/// largest raw weight, and all weights are normalised. k-hat < min(1 − 1/log10 S, 0.7) says the
-/// weighted estimates are reliable (paper, section 3). The arithmetic follows ArviZ's `psislw` with
-/// relative efficiency 1.
+/// generalized Pareto distribution above the (M + 1)-th largest weight (Zhang & Stephens 2009 with a
+/// weakly informative prior on the shape); its shape is k-hat; those weights are replaced by the fitted
+/// quantiles at (i − 1/2) / M, capped at the largest raw weight, and all weights are normalised.
+/// k-hat below [`khat_threshold`] says the weighted estimates are reliable (paper, section 3). The
+/// arithmetic follows ArviZ's `psislw` with relative efficiency 1.
+///
+/// Where ArviZ reports k-hat = +∞ for a tail too short to fit, this reports NaN with a note saying
+/// why: fewer than [`min_draws_for_khat`] draws (21: M is then below [`MIN_TAIL_DRAWS`]), or too few
+/// distinct weights above the cut-off. Weights equal to rounding (see [`EQUAL_WEIGHTS_RTOL`]) give
+/// k-hat = −∞ whatever S: the proposal is exact.
 ///
 /// Errors: lengths differ, fewer than 2 draws, a NaN or +∞ log target, a non-finite log proposal, or no
 /// draw with positive target density. A log target of −∞ (zero density, e.g. a failed model run
@@ -84,27 +127,72 @@ pub fn importance_check(log_target: &[f64], log_proposal: &[f64]) -> Result<Impo
     let sum: f64 = raw.iter().sum();
     let kish_ess = sum * sum / raw.iter().map(|w| w * w).sum::<f64>();
 
-    let (smoothed_log, khat) = if log_w.iter().all(|&v| v == log_w[0]) {
-        (vec![-(s as f64).ln(); s], f64::NEG_INFINITY)
+    let (smoothed_log, khat, khat_note) = if equal_to_rounding(log_target, log_proposal, &log_w) {
+        let note =
+            "the importance weights are equal to rounding: the Gaussian is the posterior up to \
+                    a constant";
+        (
+            vec![-(s as f64).ln(); s],
+            f64::NEG_INFINITY,
+            Some(note.to_string()),
+        )
+    } else if s < min_draws_for_khat() {
+        let note = format!(
+            "k-hat cannot be estimated from {s} draws: the Pareto fit of the largest weights needs at \
+             least {} draws ({MIN_TAIL_DRAWS} in the tail), and a few hundred for a useful estimate",
+            min_draws_for_khat()
+        );
+        let lse = log_sum_exp(&log_w);
+        (
+            log_w.iter().map(|v| v - lse).collect(),
+            f64::NAN,
+            Some(note),
+        )
     } else {
-        psis_smooth(&log_w)
+        let (smoothed, khat) = psis_smooth(&log_w);
+        let note = (!khat.is_finite()).then(|| {
+            format!(
+                "k-hat cannot be estimated: fewer than {MIN_TAIL_DRAWS} of the {s} weights stand \
+                 distinctly above the cut-off of the Pareto tail fit (many equal or zero weights)"
+            )
+        });
+        (smoothed, khat, note)
     };
     let smoothed_weights = smoothed_log.iter().map(|lw| lw.exp()).collect();
-    let khat_threshold = (1.0 - 1.0 / (s as f64).log10()).min(0.7);
     Ok(ImportanceCheck {
         khat,
-        khat_threshold,
+        khat_threshold: khat_threshold(s),
+        khat_note,
         kish_ess,
         smoothed_weights,
     })
 }
 
-/// Pareto smoothing of log weights; returns the normalised smoothed log weights and k-hat.
+/// Whether the log weights are all equal up to rounding of the log densities they come from (see
+/// [`EQUAL_WEIGHTS_RTOL`]); a zero weight (log target −∞) among positive ones is never rounding.
+fn equal_to_rounding(log_target: &[f64], log_proposal: &[f64], log_w: &[f64]) -> bool {
+    if log_w.iter().any(|v| !v.is_finite()) {
+        return false;
+    }
+    let (lo, hi) = log_w
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
+            (lo.min(v), hi.max(v))
+        });
+    let scale = log_target
+        .iter()
+        .chain(log_proposal)
+        .fold(1.0f64, |m, v| m.max(v.abs()));
+    hi - lo <= EQUAL_WEIGHTS_RTOL * scale
+}
+
+/// Pareto smoothing of log weights; returns the normalised smoothed log weights and k-hat (NaN, and
+/// the weights unsmoothed, when fewer than [`MIN_TAIL_DRAWS`] weights lie above the cut-off).
 fn psis_smooth(log_w: &[f64]) -> (Vec<f64>, f64) {
     let s = log_w.len();
     let max = log_w.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     let mut x: Vec<f64> = log_w.iter().map(|lw| lw - max).collect();
-    let tail_len_target = (s as f64 / 5.0).min(3.0 * (s as f64).sqrt()).ceil() as usize;
+    let tail_len_target = tail_len(s);
     let mut order: Vec<usize> = (0..s).collect();
     order.sort_by(|&i, &j| x[i].total_cmp(&x[j]));
     let cutoff_index = s.saturating_sub(tail_len_target + 1);
@@ -112,8 +200,8 @@ fn psis_smooth(log_w: &[f64]) -> (Vec<f64>, f64) {
     let exp_cutoff = cutoff.exp();
     // Tail draws in increasing order of weight.
     let tail: Vec<usize> = order.iter().copied().filter(|&i| x[i] > cutoff).collect();
-    let khat = if tail.len() <= 4 {
-        f64::INFINITY
+    let khat = if tail.len() < MIN_TAIL_DRAWS {
+        f64::NAN
     } else {
         let excess: Vec<f64> = tail.iter().map(|&i| x[i].exp() - exp_cutoff).collect();
         let (k, sigma) = gpd_fit(&excess);
@@ -213,6 +301,79 @@ mod tests {
         // k <= 0 — Vehtari et al. 2024, JMLR 25; the -inf value is this crate's documented convention).
         assert_eq!(c.khat, f64::NEG_INFINITY);
         assert!(c.reliable());
+    }
+
+    /// log N(x; 0, sd²) written two ways, so that rounding differs as between a cost function and a
+    /// Gaussian density coded separately.
+    fn log_normal_two_ways(x: f64, sd: f64) -> (f64, f64) {
+        let z = x / sd;
+        let a = -0.5 * z * z - sd.ln();
+        let b = -(x * x) / (2.0 * sd * sd) - sd.ln();
+        (a, b)
+    }
+
+    #[test]
+    fn twenty_draws_of_an_exact_gaussian_are_not_infinite() {
+        // An exact Gaussian proposal gives weights equal up to rounding: bounded weights, k <= 0
+        // (Vehtari et al. 2024, JMLR 25); reported as -inf with a note, reliable, never +inf.
+        let x: Vec<f64> = (0..20).map(|i| -2.0 + 0.2 * i as f64 + 0.013).collect();
+        let (lt, lq): (Vec<f64>, Vec<f64>) = x.iter().map(|&v| log_normal_two_ways(v, 1.3)).unzip();
+        assert!(
+            lt.iter().zip(&lq).any(|(a, b)| a != b),
+            "rounding must differ"
+        );
+        let c = importance_check(&lt, &lq).unwrap();
+        assert_eq!(c.khat, f64::NEG_INFINITY);
+        assert!(c.reliable());
+        assert!(c
+            .khat_note
+            .as_deref()
+            .unwrap()
+            .contains("equal to rounding"));
+        assert!((c.kish_ess - 20.0).abs() < 1e-9);
+    }
+
+    #[test]
+    fn too_few_draws_for_the_tail_fit_give_nan_with_the_minimum() {
+        // PSIS tail of ceil(min(0.2 S, 3 sqrt S)) draws and at least 5 for the fit (Vehtari et al.
+        // 2024, JMLR 25; ArviZ 0.23 psislw): 20 draws give a tail of 4, 21 draws a tail of 5.
+        assert_eq!(min_draws_for_khat(), 21);
+        assert_eq!(tail_len(20), 4);
+        assert_eq!(tail_len(21), 5);
+        // 20 draws of N(0, 1) weighted against a wider Gaussian proposal N(0, 1.5^2).
+        let x: Vec<f64> = (0..20).map(|i| -2.5 + 0.26 * i as f64).collect();
+        let lt: Vec<f64> = x.iter().map(|&v| log_normal_two_ways(v, 1.0).0).collect();
+        let lq: Vec<f64> = x.iter().map(|&v| log_normal_two_ways(v, 1.5).0).collect();
+        let c = importance_check(&lt, &lq).unwrap();
+        assert!(c.khat.is_nan(), "{}", c.khat);
+        assert!(!c.reliable());
+        let note = c.khat_note.unwrap();
+        assert!(
+            note.contains("20 draws") && note.contains("at least 21"),
+            "{note}"
+        );
+        let total: f64 = c.smoothed_weights.iter().sum();
+        assert!((total - 1.0).abs() < 1e-12);
+        // One more draw and k-hat is estimated.
+        let x21: Vec<f64> = (0..21).map(|i| -2.5 + 0.25 * i as f64).collect();
+        let lt: Vec<f64> = x21.iter().map(|&v| log_normal_two_ways(v, 1.0).0).collect();
+        let lq: Vec<f64> = x21.iter().map(|&v| log_normal_two_ways(v, 1.5).0).collect();
+        let c = importance_check(&lt, &lq).unwrap();
+        assert!(
+            c.khat.is_finite() && c.khat_note.is_none(),
+            "{:?}",
+            c.khat_note
+        );
+    }
+
+    #[test]
+    fn threshold_follows_the_sample_size() {
+        // min(1 - 1/log10(S), 0.7): Vehtari et al. 2024, JMLR 25, section 3.
+        assert!((khat_threshold(100) - 0.5).abs() < 1e-15);
+        assert!((khat_threshold(1000) - (1.0 - 1.0 / 3.0)).abs() < 1e-15);
+        assert!(khat_threshold(2154) < 0.7);
+        assert_eq!(khat_threshold(2155), 0.7);
+        assert_eq!(khat_threshold(100_000), 0.7);
     }
 
     #[test]

@@ -47,12 +47,16 @@ mod weighted;
 pub use autocov::{autocorrelation, autocovariance};
 pub use bfmi::bfmi;
 pub use ess::{ess_bulk, ess_tail};
-pub use laplace_check::{importance_check, ImportanceCheck};
+pub use laplace_check::{
+    importance_check, khat_threshold, min_draws_for_khat, ImportanceCheck, EQUAL_WEIGHTS_RTOL,
+    MIN_TAIL_DRAWS,
+};
 pub use mcse::{mcse_mean, mcse_quantile, mcse_sd};
 pub use rhat::rhat;
 pub use special::inverse_normal_cdf;
 pub use summary::{component_stats, ComponentStats};
 pub use verdict::{
-    Check, Status, Verdict, CONDITIONAL_CAUTION, ESS_LIMIT, KHAT_LIMIT, MIN_CHAINS, RHAT_LIMIT,
+    Check, KhatReading, Status, Verdict, CONDITIONAL_CAUTION, ESS_LIMIT, KHAT_LIMIT, MIN_CHAINS,
+    RHAT_LIMIT,
 };
 pub use weighted::weighted_component_stats;
