@@ -157,6 +157,9 @@ impl RunConfig {
 
     /// Checks every setting of every stage, naming the first bad one and how to fix it.
     pub fn validate(&self) -> Result<()> {
+        if let ProblemSource::Adapter(a) = &self.source {
+            a.validate()?;
+        }
         self.lbfgs.validate()?;
         validate_laplace(&self.laplace)?;
         self.sampler.validate()?;
