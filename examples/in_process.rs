@@ -11,13 +11,13 @@
 use std::sync::Arc;
 
 use varpost::diagnostics::{component_stats, Verdict};
-use varpost::Interrupt;
 use varpost::optimize::{find_map, MapConfig};
 use varpost::precond::{laplace, LaplaceOptions};
 use varpost::problem::check::gradient_test;
 use varpost::problem::{Counted, DiagonalPrior, Prior, Problem};
 use varpost::sampler::{component_per_chain, run, KernelKind, SampleConfig, Target};
 use varpost::EvalError;
+use varpost::Interrupt;
 
 struct MyCost {
     prior: DiagonalPrior,

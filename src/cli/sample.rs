@@ -9,10 +9,10 @@ use super::print;
 use super::watch::{run_watched, ChainProgress, Watch};
 use crate::config::{LaplaceCheckConfig, ProblemSource, RunConfig};
 use crate::error::{Error, ExitCode, Result};
-use crate::Interrupt;
 use crate::output::progress::Progress;
 use crate::pipeline::{self, Loaded};
 use crate::problem::Problem;
+use crate::Interrupt;
 
 /// `varpost sample`: a new run into its output folder.
 pub fn sample(

@@ -7,7 +7,9 @@ use std::path::{Path, PathBuf};
 
 use super::diagnose::diagnose;
 use super::sample::{read_run, SampleOutcome};
-use crate::diagnostics::{autocorrelation, ComponentStats, Status, Verdict, CONDITIONAL_CAUTION};
+use crate::diagnostics::{
+    autocorrelation, ComponentStats, KhatReading, Status, Verdict, CONDITIONAL_CAUTION,
+};
 use crate::error::Result;
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};
 use crate::output::html::{write_report, Figure, ReportPage};
@@ -103,8 +105,11 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
         ));
     }
     let (stats, _) = diagnose(&Ensemble::Chains(ChainDraws::open(dir, chains)?))?;
-    let khat = summary.laplace_check.as_ref().map(|c| c.khat);
-    let verdict = Verdict::from_components(&stats, chains, khat);
+    let khat = summary.laplace_check.as_ref().map(|c| KhatReading {
+        khat: c.khat,
+        draws: Some(c.draws),
+    });
+    let verdict = Verdict::from_components_with_khat(&stats, chains, khat);
     let data = ReportData::new(
         summary,
         draws,

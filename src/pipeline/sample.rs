@@ -152,8 +152,9 @@ fn chains_stage(
 fn diagnosis_stage(out: &Path, cfg: &RunConfig, results: &StageResults) -> Result<Diagnosis> {
     let ensemble = Ensemble::Chains(ChainDraws::open(out, cfg.sampler.chains)?);
     let (stats, ebfmi) = diagnose(&ensemble)?;
-    let khat = results.laplace_check.as_ref().map(|c| c.check.khat);
-    let verdict = Verdict::from_components(&stats, cfg.sampler.chains, khat);
+    // k-hat judged against the sample-size threshold of the check's own draws (one threshold).
+    let khat = results.laplace_check.as_ref().map(|c| (&c.check).into());
+    let verdict = Verdict::from_components_with_khat(&stats, cfg.sampler.chains, khat);
     Ok(Diagnosis {
         stats,
         ebfmi,

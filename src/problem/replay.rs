@@ -414,10 +414,16 @@ mod tests {
             b.insert(0, rng.random_range(1..=5u8));
             b
         };
-        fuzz::run("fuzz_evaluation_record_reader", fuzz::INPUTS, &mut rng, make, |b| {
-            // Accepted: at least one whole record read.
-            b.split_first()
-                .is_some_and(|(&n, rest)| read_all(rest, usize::from(n)) > 0)
-        });
+        fuzz::run(
+            "fuzz_evaluation_record_reader",
+            fuzz::INPUTS,
+            &mut rng,
+            make,
+            |b| {
+                // Accepted: at least one whole record read.
+                b.split_first()
+                    .is_some_and(|(&n, rest)| read_all(rest, usize::from(n)) > 0)
+            },
+        );
     }
 }

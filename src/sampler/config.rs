@@ -42,6 +42,24 @@ impl KernelKind {
     }
 }
 
+impl std::str::FromStr for KernelKind {
+    type Err = Error;
+    /// Parses a kernel name through the one list of names (the enum's values).
+    fn from_str(s: &str) -> Result<Self> {
+        <KernelKind as clap::ValueEnum>::from_str(s, false).map_err(|_| {
+            let names: Vec<String> = <KernelKind as clap::ValueEnum>::value_variants()
+                .iter()
+                .filter_map(|k| clap::ValueEnum::to_possible_value(k))
+                .map(|v| v.get_name().to_string())
+                .collect();
+            Error::Config(format!(
+                "unknown sampler kernel '{s}': choose one of {}",
+                names.join(", ")
+            ))
+        })
+    }
+}
+
 /// Settings of the HMC kernel.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(default)]

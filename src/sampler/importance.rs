@@ -38,7 +38,10 @@ pub fn laplace_draws(target: &Target<'_>, k: usize, seed: u64) -> Result<Importa
             standard_normal(&mut rng, n)
         })
         .collect();
-    let log_proposal: Vec<f64> = us.iter().map(|u| -0.5 * crate::util::vector::dot(u, u)).collect();
+    let log_proposal: Vec<f64> = us
+        .iter()
+        .map(|u| -0.5 * crate::util::vector::dot(u, u))
+        .collect();
     let log_target: Vec<f64> = target
         .log_density_batch(&us)?
         .into_iter()

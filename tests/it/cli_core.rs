@@ -420,15 +420,33 @@ fn without_out_each_subcommand_writes_to_a_folder_named_after_it() {
 fn a_locked_folder_is_refused_naming_the_holder() {
     let d = temp_dir("locked-folder");
     let lock = varpost::output::lock::RunLock::acquire(&d, "a test holding the folder").unwrap();
-    let o = run(&["map", "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+    let o = run(&[
+        "map",
+        "--problem",
+        "linear-gaussian",
+        "--out",
+        d.to_str().unwrap(),
+    ]);
     let e = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(2), "{e}");
     assert!(e.contains(&std::process::id().to_string()), "{e}");
-    assert!(!d.join("summary.json").exists(), "the refused run wrote its summary");
+    assert!(
+        !d.join("summary.json").exists(),
+        "the refused run wrote its summary"
+    );
     drop(lock);
-    let o = run(&["map", "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+    let o = run(&[
+        "map",
+        "--problem",
+        "linear-gaussian",
+        "--out",
+        d.to_str().unwrap(),
+    ]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    assert!(!d.join(".varpost.lock").exists(), "the lock is released on exit");
+    assert!(
+        !d.join(".varpost.lock").exists(),
+        "the lock is released on exit"
+    );
 }
 
 /// `map`, `check`, `hessian` and `sample` refuse a folder that holds a sampling run instead of
@@ -436,12 +454,25 @@ fn a_locked_folder_is_refused_naming_the_holder() {
 #[test]
 fn a_sampling_run_is_not_overwritten() {
     let d = temp_dir("holds-a-run");
-    std::fs::copy(common::root().join("tests/it/fixtures/run-v1.json"), d.join("run.json")).unwrap();
+    std::fs::copy(
+        common::root().join("tests/it/fixtures/run-v1.json"),
+        d.join("run.json"),
+    )
+    .unwrap();
     for cmd in ["map", "check", "hessian", "sample"] {
-        let o = run(&[cmd, "--problem", "linear-gaussian", "--out", d.to_str().unwrap()]);
+        let o = run(&[
+            cmd,
+            "--problem",
+            "linear-gaussian",
+            "--out",
+            d.to_str().unwrap(),
+        ]);
         let e = String::from_utf8_lossy(&o.stderr);
         assert_eq!(o.status.code(), Some(2), "{cmd}: {e}");
-        assert!(e.contains("holds a sampling run") && e.contains("varpost resume"), "{cmd}: {e}");
+        assert!(
+            e.contains("holds a sampling run") && e.contains("varpost resume"),
+            "{cmd}: {e}"
+        );
         assert!(!d.join("summary.json").exists(), "{cmd} wrote a summary");
     }
 }

@@ -9,10 +9,10 @@ use std::sync::Arc;
 use common::sampling::*;
 use common::temp_dir;
 use nalgebra::{DMatrix, DVector};
-use varpost::Interrupt;
 use varpost::precond::Preconditioner;
 use varpost::problem::{Counted, Problem};
 use varpost::sampler::{run, DrawsFile, KernelKind, SampleConfig, SampleResult, Target};
+use varpost::Interrupt;
 
 fn config(kernel: KernelKind, draws: u64) -> SampleConfig {
     SampleConfig {

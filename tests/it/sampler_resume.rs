@@ -11,10 +11,10 @@ use std::time::{Duration, Instant};
 use common::sampling::*;
 use common::temp_dir;
 use varpost::error::Error;
-use varpost::Interrupt;
 use varpost::problem::Counted;
 use varpost::sampler::checkpoint::checkpoint_path;
 use varpost::sampler::{run, Checkpoint, KernelKind, Progress, SampleConfig, SampleResult, Target};
+use varpost::Interrupt;
 
 fn cfg(kernel: KernelKind) -> SampleConfig {
     SampleConfig {
@@ -522,7 +522,10 @@ fn edited_checkpoints_are_refused_naming_the_field() {
         (
             "moments short",
             |v| {
-                v["chains"][0]["moments"]["mean"].as_array_mut().unwrap().pop();
+                v["chains"][0]["moments"]["mean"]
+                    .as_array_mut()
+                    .unwrap()
+                    .pop();
             },
             "chains[0].moments: mean has 2 entries, expected 3",
         ),
@@ -538,20 +541,31 @@ fn edited_checkpoints_are_refused_naming_the_field() {
         ),
         (
             "state too long",
-            |v| v["chains"][1]["state"]["u"].as_array_mut().unwrap().push(0.5.into()),
+            |v| {
+                v["chains"][1]["state"]["u"]
+                    .as_array_mut()
+                    .unwrap()
+                    .push(0.5.into())
+            },
             "chains[1].state.u has 4 entries, expected 3",
         ),
         (
             "gradient short",
             |v| {
-                v["chains"][0]["state"]["grad"].as_array_mut().unwrap().pop();
+                v["chains"][0]["state"]["grad"]
+                    .as_array_mut()
+                    .unwrap()
+                    .pop();
             },
             "chains[0].state.grad has 2 entries",
         ),
         (
             "metric short",
             |v| {
-                v["chains"][0]["warmup"]["metric"].as_array_mut().unwrap().pop();
+                v["chains"][0]["warmup"]["metric"]
+                    .as_array_mut()
+                    .unwrap()
+                    .pop();
             },
             "chains[0].warmup: metric has 2 entries",
         ),
@@ -595,7 +609,13 @@ fn edited_checkpoints_are_refused_naming_the_field() {
             "{what}: {msg}"
         );
         // Nor does a resume get past it.
-        let r = run_gauss(Gaussian::correlated(3), &fixture_cfg(), &dir, true, &Interrupt::new());
+        let r = run_gauss(
+            Gaussian::correlated(3),
+            &fixture_cfg(),
+            &dir,
+            true,
+            &Interrupt::new(),
+        );
         assert!(r.is_err(), "{what}: resumed");
     }
     // The unedited content re-encoded loads again.

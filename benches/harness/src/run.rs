@@ -9,7 +9,6 @@ use std::time::Instant;
 
 use serde::{Deserialize, Serialize};
 use varpost::diagnostics::component_stats;
-use varpost::Interrupt;
 use varpost::optimize::{find_map, MapConfig};
 use varpost::precond::{laplace, IdentityPrecond, LaplaceMethod, LaplaceOptions, Preconditioner};
 use varpost::problem::builtin;
@@ -18,6 +17,7 @@ use varpost::problem::linear_gaussian::GaussianReference;
 use varpost::problem::settings::Settings;
 use varpost::problem::{CostSplit, Prior};
 use varpost::sampler::{self, open_chains, KernelKind, SampleConfig, Target};
+use varpost::Interrupt;
 use varpost::{Counted, EvalError, Problem};
 
 use crate::nuts::{self, Adaptation};

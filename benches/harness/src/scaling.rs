@@ -4,9 +4,9 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use serde::{Deserialize, Serialize};
-use varpost::Interrupt;
 use varpost::precond::{IdentityPrecond, Preconditioner};
 use varpost::sampler::{self, KernelKind, SampleConfig, Target};
+use varpost::Interrupt;
 use varpost::{Counted, Problem};
 
 use crate::matrix::lg_settings;
