@@ -5,3 +5,5 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 cargo test --release --lib -- --ignored fuzz_ --nocapture --test-threads 1
+# The protocol decoders (hello, start, requests and replies in both encodings), one million inputs each.
+VARPOST_FUZZ_ROUNDS=1000000 cargo test --release --test it decoders_never_panic -- --nocapture
