@@ -1,6 +1,7 @@
 //! All integration tests in one binary, so that a change in src/ relinks one test target.
 
 mod common;
+mod adapter_batch;
 mod adapter_cli;
 mod adapter_examples;
 mod adapter_faults;
