@@ -286,7 +286,7 @@ fn nest(rng: &mut ChaCha8Rng, input: &mut Vec<u8>) {
 }
 
 /// Changes a binary frame's header field: length, tag, flags, or a payload double's bits.
-fn binary_field(rng: &mut ChaCha8Rng, input: &mut Vec<u8>) {
+fn binary_field(rng: &mut ChaCha8Rng, input: &mut [u8]) {
     if input.len() < FRAME_HEADER {
         return;
     }
