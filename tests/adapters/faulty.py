@@ -7,8 +7,12 @@ wrong_id, stray_stdout, deaf, errors (a recoverable error where x_0 < -100, a fa
 a NaN cost where 100 < x_0 <= 1000), slow_start, ignore_term (ignores SIGTERM, then hangs in its first
 evaluation), huge_dim N (a hello declaring dimension N, written as given, e.g. 1e12), close_stdout
 (closes its stdout in its first evaluation and keeps running), close_stdout_exit (closes its stdout in
-its first evaluation, then exits with status 4). Arguments after the mode that no mode reads (e.g. a unique marker for finding the process
-in /proc) are ignored.
+its first evaluation, then exits with status 4), chatty MIB (writes MIB MiB of numbered 100-byte lines
+to stderr in its first evaluation, and nothing else), counting DIR (appends a line to DIR/<its pid>.count
+at each evaluation).
+
+Arguments after the mode that no mode reads (e.g. a unique marker for finding the process in /proc) are
+ignored.
 """
 import json
 import os
@@ -53,6 +57,9 @@ def cost_grad(x):
         os.close(1)
         time.sleep(0.2 if mode == "close_stdout_exit" else 3600)
         os._exit(4)
+    if mode == "counting":
+        with open(os.path.join(sys.argv[2], "%d.count" % os.getpid()), "a") as f:
+            f.write("%r\n" % (x,))
     if mode == "chatty" and calls[0] == 1:
         err = sys.stderr.buffer
         for k in range(int(sys.argv[2]) * 1024 * 1024 // 100):

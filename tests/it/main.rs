@@ -1,5 +1,6 @@
 //! All integration tests in one binary, so that a change in src/ relinks one test target.
 
+mod adapter_batch;
 mod adapter_cli;
 mod adapter_examples;
 mod adapter_faults;

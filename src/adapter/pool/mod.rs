@@ -3,12 +3,13 @@
 //! request retried; a prior offered by the adapter is exposed as a [`Prior`].
 //!
 //! Files: `config` (how to run the adapter), `slots` (the idle workers and shutting down), `restart`
-//! (starts, restarts and the retry policy of one request), `problem` (the [`Problem`] methods), `prior`
-//! (the adapter's background as a [`Prior`]).
+//! (starts, restarts and the retry policy of one request), `problem` (the [`Problem`] methods), `batch`
+//! (many cost evaluations spread over all workers), `prior` (the adapter's background as a [`Prior`]).
 //!
 //! [`Problem`]: crate::problem::Problem
 //! [`Prior`]: crate::problem::Prior
 
+mod batch;
 mod config;
 mod prior;
 mod problem;

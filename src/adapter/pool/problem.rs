@@ -69,6 +69,10 @@ impl Problem for AdapterProblem {
         cost_of(self.pool.call(&Request::new(Op::Cost, x, &[]))?)
     }
 
+    fn cost_batch(&self, xs: &[&[f64]]) -> Vec<Result<f64, EvalError>> {
+        super::batch::cost_batch(&self.pool, xs)
+    }
+
     fn has_hess_vec(&self) -> bool {
         self.pool.hello.offers.hess_vec
     }

@@ -61,10 +61,8 @@ impl Pool {
 
     /// Sends one request on an idle worker, restarting dead workers up to `max_restarts` times.
     pub fn call(&self, req: &Request<'_>) -> Result<Reply, EvalError> {
-        let mut slot = self.take_slot()?;
-        let result = self.call_on(&mut slot, req);
-        self.put_slot(slot);
-        result
+        let mut slot = self.guard(self.take_slot()?);
+        self.call_on(slot.slot(), req)
     }
 
     /// Sends one request on the worker of `slot`, restarting it up to `max_restarts` times.

@@ -56,6 +56,28 @@ impl Pool {
         }
     }
 
+    /// Takes up to `want` (at least 1) worker places: waits for the first, then takes those idle now.
+    pub fn take_slots(&self, want: usize) -> Result<Vec<SlotGuard<'_>>, EvalError> {
+        let mut taken = vec![self.guard(self.take_slot()?)];
+        if let Ok(mut idle) = self.idle.lock() {
+            while taken.len() < want {
+                match idle.pop() {
+                    Some(s) => taken.push(SlotGuard {
+                        pool: self,
+                        slot: s,
+                    }),
+                    None => break,
+                }
+            }
+        }
+        Ok(taken)
+    }
+
+    /// Holds `slot` until the guard is dropped, which gives it back (also when a panic unwinds).
+    pub fn guard(&self, slot: Slot) -> SlotGuard<'_> {
+        SlotGuard { pool: self, slot }
+    }
+
     /// Gives a worker place back.
     pub fn put_slot(&self, slot: Slot) {
         if let Ok(mut idle) = self.idle.lock() {
@@ -80,6 +102,30 @@ impl Pool {
                 w.finish_quit(deadline);
             }
         }
+    }
+}
+
+/// A worker place taken from the pool, given back when dropped.
+pub(super) struct SlotGuard<'a> {
+    pool: &'a Pool,
+    slot: Slot,
+}
+
+impl SlotGuard<'_> {
+    /// The place held.
+    pub fn slot(&mut self) -> &mut Slot {
+        &mut self.slot
+    }
+}
+
+impl Drop for SlotGuard<'_> {
+    fn drop(&mut self) {
+        let empty = Slot {
+            index: self.slot.index,
+            worker: None,
+            starts: 0,
+        };
+        self.pool.put_slot(std::mem::replace(&mut self.slot, empty));
     }
 }
 

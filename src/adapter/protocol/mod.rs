@@ -27,6 +27,9 @@ mod json;
 pub mod messages;
 mod text;
 
+#[cfg(test)]
+mod fuzz;
+
 use std::fmt;
 
 pub use hello::{decode_hello, decode_start, encode_hello, encode_start};
