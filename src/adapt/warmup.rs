@@ -130,6 +130,30 @@ impl Warmup {
         })
     }
 
+    /// init for the pooled warm-up ([`super::plan`]): `total` iterations adapting the step size from
+    /// `eps0` towards the mean acceptance `target`, restarted only from outside ([`Warmup::restart`]).
+    pub fn pooled(total: u64, dim: usize, eps0: f64, target: f64) -> Result<Self> {
+        let settings = DualAveragingSettings::default();
+        Ok(Warmup {
+            controller: Some(DualAveraging::new(eps0, target, settings)?),
+            settings,
+            restarts: Vec::new(),
+            total,
+            done: 0,
+            fixed: eps0,
+            window: None,
+            metric: vec![1.0; dim],
+        })
+    }
+
+    /// Restarts dual averaging from step size `eps` (at a barrier of the pooled warm-up).
+    pub fn restart(&mut self, eps: f64) -> Result<()> {
+        if let Some(c) = self.controller.as_mut() {
+            *c = DualAveraging::new(eps, c.target(), self.settings)?;
+        }
+        Ok(())
+    }
+
     /// The step size to use for the next warm-up iteration.
     pub fn step_size(&self) -> f64 {
         self.controller
@@ -235,6 +259,11 @@ impl Warmup {
     /// Whether all warm-up iterations have been fed.
     pub fn is_done(&self) -> bool {
         self.done >= self.total
+    }
+
+    /// Iterations fed so far.
+    pub fn done(&self) -> u64 {
+        self.done
     }
 
     /// Whether the metric is being refined.

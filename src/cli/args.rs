@@ -18,7 +18,9 @@ use crate::output::progress::LogFormat;
 use crate::pipeline::MapRunConfig;
 use crate::precond::LaplaceOptions;
 use crate::sampler::config::MAX_CHAINS;
-use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
+use crate::sampler::{
+    HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig,
+};
 
 /// Posterior uncertainty for strong-constraint 4D-Var: gradient check, L-BFGS analysis, Hessian at the
 /// analysis, and preconditioned MCMC ensembles with convergence diagnostics.
@@ -341,7 +343,8 @@ pub struct ChainArgs {
     #[arg(long, default_value_t = SampleConfig::default().draws,
           value_parser = clap::value_parser!(u64).range(1..))]
     pub draws: u64,
-    /// Warm-up iterations per chain (discarded).
+    /// Warm-up iterations per chain (discarded); with the pooled metric learning, the most: the
+    /// warm-up ends earlier once step size and metric have settled.
     #[arg(long, default_value_t = SampleConfig::default().warmup)]
     pub warmup: u64,
     /// Seed of every random stream (chain c uses stream c).
@@ -367,8 +370,13 @@ pub struct ChainArgs {
     /// Gaussian).
     #[arg(long, allow_negative_numbers = true, value_parser = parse::positive)]
     pub t_dof: Option<f64>,
-    /// Refine the metric during the warm-up from the warm-up draws (diagonal, MALA and HMC).
-    #[arg(long)]
+    /// How the warm-up learns the metric (MALA and HMC): pooled over all chains and ended once
+    /// settled (default), off (the Laplace metric as it is), or per-chain-diagonal (each chain its
+    /// own diagonal, over the whole warm-up).
+    #[arg(long, value_enum, default_value_t = MetricLearning::Pooled)]
+    pub learn_metric: MetricLearning,
+    /// The first release's name for --learn-metric per-chain-diagonal.
+    #[arg(long, conflicts_with = "learn_metric")]
     pub adapt_metric: bool,
     /// Laplace draws for the check of how far the Gaussian approximation holds (0 skips it; otherwise
     /// 50 to 10,000,000).
@@ -396,6 +404,7 @@ impl ChainArgs {
             },
             independence: IndependenceSettings { t_dof: self.t_dof },
             adapt_metric: self.adapt_metric,
+            learn_metric: Some(self.learn_metric),
             ..Default::default()
         }
     }

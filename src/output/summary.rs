@@ -197,9 +197,23 @@ pub struct SamplingSummary {
     pub metric: String,
     pub chains: usize,
     pub draws_per_chain: u64,
+    /// The warm-up asked for (with the pooled metric learning, the most).
     pub warmup: u64,
     pub thin: u64,
     pub seed: u64,
+    /// How the warm-up learned the metric (pooled, off, per-chain-diagonal).
+    #[serde(default)]
+    pub learn_metric: String,
+    /// Warm-up iterations each chain did.
+    #[serde(default)]
+    pub warmup_done: u64,
+    /// The pooled warm-up: the iteration at which step size and metric had settled, if they did.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub warmup_settled_at: Option<u64>,
+    /// The pooled warm-up's metric windows: pooled draws, shrinkage towards the Laplace metric,
+    /// change from the metric before, pooled step size.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub warmup_windows: Vec<crate::adapt::WindowReport>,
     /// Whether this summary was written by a resumed run.
     pub resumed: bool,
     /// Evaluations served from the evaluation record on resume instead of the model.

@@ -95,6 +95,15 @@ fn sampling_config(r: &StageResults) -> Option<SamplingSummary> {
         warmup: c.warmup,
         thin: c.thin,
         seed: c.seed,
+        learn_metric: c.learning().name().into(),
+        warmup_done: smp.result.warmup_iterations,
+        warmup_settled_at: smp.result.plan.as_ref().and_then(|p| p.settled),
+        warmup_windows: smp
+            .result
+            .plan
+            .as_ref()
+            .map(|p| p.history.clone())
+            .unwrap_or_default(),
         resumed: smp.resumed,
         replayed_evaluations: smp.replayed,
     })

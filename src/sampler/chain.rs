@@ -23,15 +23,15 @@ use rand::SeedableRng;
 use rayon::prelude::*;
 
 use super::checkpoint::{checkpoint_path, Checkpoint};
-use super::config::SampleConfig;
+use super::config::{MetricLearning, SampleConfig};
 use super::draws::{
     draws_path, DrawRecord, DrawsWriter, FLAG_ACCEPTED, FLAG_DIVERGENT, FLAG_NONFINITE,
 };
 use super::state::{ChainCheckpoint, RngState};
 pub use super::state::{ChainStats, PhaseStats};
 use super::welford::Welford;
-use super::{standard_normal, ChainRng, ChainState, Kernel, Target};
-use crate::adapt::Warmup;
+use super::{standard_normal, ChainRng, ChainState, Kernel, Metric, Target};
+use crate::adapt::{plan::pooled_step, Warmup, WarmupPlan};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::problem::EvalCounts;
@@ -95,6 +95,10 @@ pub struct SampleResult {
     pub counts_warmup: EvalCounts,
     /// Evaluations while sampling.
     pub counts_sampling: EvalCounts,
+    /// Warm-up iterations each chain did.
+    pub warmup_iterations: u64,
+    /// The pooled warm-up: its windows, the learned metric, where it settled.
+    pub plan: Option<WarmupPlan>,
 }
 
 struct Runner {
@@ -107,6 +111,8 @@ struct Runner {
     stats: ChainStats,
     moments: Welford,
     writer: DrawsWriter,
+    /// Whitened positions of the current window of the pooled warm-up.
+    window: Vec<Vec<f64>>,
 }
 
 /// What a chain needs besides its own state.
@@ -145,6 +151,12 @@ impl Runner {
             })?,
         };
         let warmup = match kernel.spec(n).step_size {
+            Some(spec) if config.learning() == MetricLearning::Pooled => Warmup::pooled(
+                config.warmup,
+                n,
+                config.initial_step_size.unwrap_or(spec.initial),
+                config.target_accept.unwrap_or(spec.target_accept),
+            )?,
             Some(spec) => Warmup::init(
                 config.warmup,
                 n,
@@ -167,6 +179,7 @@ impl Runner {
             stats: ChainStats::default(),
             moments: Welford::new(n),
             writer,
+            window: Vec::new(),
         })
     }
 
@@ -182,6 +195,7 @@ impl Runner {
             stats: c.stats.clone(),
             moments: c.moments.clone(),
             writer,
+            window: c.window.clone(),
         })
     }
 
@@ -195,27 +209,39 @@ impl Runner {
             step_size: self.step_size,
             stats: self.stats.clone(),
             moments: self.moments.clone(),
+            window: self.window.clone(),
         }
     }
 
     /// Runs iterations until `until`, an interrupt or an abort. On error the chain is left as it was
     /// before the failed iteration (random stream included), so that a checkpoint written afterwards
     /// resumes that iteration exactly.
-    fn advance(&mut self, until: u64, ctx: &Ctx<'_, '_>) -> Result<()> {
+    fn advance(&mut self, until: u64, ctx: &Ctx<'_, '_>, plan: Option<&WarmupPlan>) -> Result<()> {
         let cfg = ctx.config;
-        let total = cfg.iterations();
+        let warmup_end = plan.map_or(cfg.warmup, |p| p.end);
+        let total = warmup_end + cfg.draws * cfg.thin;
+        let fixed_metric = match plan {
+            Some(p) => p.metric.clone(),
+            None => Metric::unit(self.state.u.len()),
+        };
         while self.iteration < until {
             if ctx.interrupt.is_set() || ctx.abort.load(Ordering::Relaxed) {
                 break;
             }
-            let in_warmup = self.iteration < cfg.warmup;
+            let in_warmup = self.iteration < warmup_end;
             let eps = if in_warmup {
                 self.warmup.step_size()
             } else {
                 self.step_size
             };
             let rng_before = self.rng.clone();
-            let metric = self.warmup.metric();
+            let own;
+            let metric = if self.warmup.adapts_metric() {
+                own = Metric::diagonal(self.warmup.metric());
+                &own
+            } else {
+                &fixed_metric
+            };
             let step = ctx
                 .kernel
                 .step(ctx.target, &mut self.rng, &self.state, eps, metric);
@@ -232,13 +258,16 @@ impl Runner {
                     self.rng = rng_before;
                     return Err(e);
                 }
-                if w.is_done() {
+                if plan.is_none() && w.is_done() {
                     self.step_size = w.finish();
+                }
+                if plan.is_some_and(|p| p.collects(w.done())) {
+                    self.window.push(next.u.clone());
                 }
                 self.warmup = w;
                 self.stats.warmup.add(&info);
             } else {
-                if (self.iteration - cfg.warmup + 1).is_multiple_of(cfg.thin) {
+                if (self.iteration - warmup_end + 1).is_multiple_of(cfg.thin) {
                     let mut x = vec![0.0; next.u.len()];
                     ctx.target.to_model(&next.u, &mut x);
                     let flags = if info.accepted { FLAG_ACCEPTED } else { 0 }
@@ -335,6 +364,9 @@ struct Chains {
     runners: Vec<Runner>,
     counts_warmup: EvalCounts,
     counts_sampling: EvalCounts,
+    /// The pooled warm-up (`None` for the other ways of learning the metric, and kernels without a
+    /// step size).
+    plan: Option<WarmupPlan>,
 }
 
 impl Chains {
@@ -353,10 +385,13 @@ impl Chains {
             .into_par_iter()
             .map(|c| Runner::start(c, ctx, out_dir))
             .collect::<Result<Vec<_>>>()?;
+        let pooled = ctx.config.learning() == MetricLearning::Pooled
+            && ctx.kernel.spec(ctx.target.dim()).step_size.is_some();
         Ok(Chains {
             runners,
             counts_warmup: ctx.target.counts().since(&before),
             counts_sampling: EvalCounts::default(),
+            plan: pooled.then(|| WarmupPlan::new(ctx.config.warmup, ctx.target.dim())),
         })
     }
 
@@ -374,6 +409,7 @@ impl Chains {
             runners,
             counts_warmup: ck.counts_warmup,
             counts_sampling: ck.counts_sampling,
+            plan: ck.plan,
         })
     }
 
@@ -393,6 +429,7 @@ impl Chains {
             chains: self.runners.iter().map(Runner::save).collect(),
             counts_warmup: self.counts_warmup,
             counts_sampling: self.counts_sampling,
+            plan: self.plan.clone(),
             complete,
         }
         .save(out_dir)
@@ -402,14 +439,15 @@ impl Chains {
     /// with the first chain's error or at an interrupt, after saving.
     fn run_segments(&mut self, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<()> {
         let config = ctx.config;
-        let total = config.iterations();
         loop {
+            let total = self.total(config);
             let lowest = self.lowest_iteration().unwrap_or(total);
             if lowest >= total {
                 return Ok(());
             }
-            let until = segment_end(lowest, config);
+            let until = self.segment_end(lowest, config);
             let outcomes = self.advance_all(until, ctx);
+            self.barrier()?;
             self.save(ctx, out_dir, false)?;
             if let Some((c, Err(e))) = outcomes.into_iter().enumerate().find(|(_, o)| o.is_err()) {
                 return Err(chain_failed(c, self.runners[c].iteration, e, out_dir));
@@ -425,6 +463,66 @@ impl Chains {
         }
     }
 
+    /// Where the warm-up ends: fixed, or where the pooled warm-up settled.
+    fn warmup_end(&self, config: &SampleConfig) -> u64 {
+        self.plan.as_ref().map_or(config.warmup, |p| p.end)
+    }
+
+    /// Total iterations per chain.
+    fn total(&self, config: &SampleConfig) -> u64 {
+        self.warmup_end(config) + config.draws * config.thin
+    }
+
+    /// The end of the segment that starts at iteration `lowest`: the next multiple of the checkpoint
+    /// interval, the next barrier of the warm-up, or the end of the run, whichever comes first.
+    fn segment_end(&self, lowest: u64, config: &SampleConfig) -> u64 {
+        let every = config.checkpoint_every;
+        let mut until = (lowest / every + 1)
+            .saturating_mul(every)
+            .min(self.total(config));
+        let end = self.warmup_end(config);
+        if lowest < end {
+            until = until.min(end);
+        }
+        if let Some(b) = self.plan.as_ref().and_then(|p| p.next_barrier(lowest)) {
+            until = until.min(b);
+        }
+        until
+    }
+
+    /// At a barrier of the pooled warm-up (every chain at the same iteration): closes the metric
+    /// window that ends there, in chain order, and restarts every chain's step size from the pooled
+    /// one; at the warm-up's end gives every chain the pooled sampling step size.
+    fn barrier(&mut self) -> Result<()> {
+        let Some(plan) = self.plan.as_mut() else {
+            return Ok(());
+        };
+        let at = self.runners[0].iteration;
+        if self.runners.iter().any(|r| r.iteration != at) {
+            return Ok(());
+        }
+        let steps: Vec<f64> = self.runners.iter().map(|r| r.warmup.finish()).collect();
+        if plan.window_ends_at(at) {
+            let draws: Vec<&[f64]> = self
+                .runners
+                .iter()
+                .flat_map(|r| r.window.iter().map(Vec::as_slice))
+                .collect();
+            let step = plan.close_window(at, &draws, &steps);
+            for r in self.runners.iter_mut() {
+                r.window.clear();
+                r.warmup.restart(step)?;
+            }
+        } else if at == plan.end && !plan.finished {
+            let step = pooled_step(&steps);
+            for r in self.runners.iter_mut() {
+                r.step_size = step;
+            }
+            plan.finished = true;
+        }
+        Ok(())
+    }
+
     /// The fewest iterations any chain has done (`None` without chains).
     fn lowest_iteration(&self) -> Option<u64> {
         self.runners.iter().map(|r| r.iteration).min()
@@ -434,11 +532,13 @@ impl Chains {
     /// segment's phase; returns each chain's outcome. A failing chain makes the others stop early.
     fn advance_all(&mut self, until: u64, ctx: &Ctx<'_, '_>) -> Vec<Result<()>> {
         let before = ctx.target.counts();
+        let warmup_end = self.warmup_end(ctx.config);
+        let plan = self.plan.as_ref();
         let outcomes: Vec<Result<()>> = self
             .runners
             .par_iter_mut()
             .map(|r| {
-                let out = r.advance(until, ctx);
+                let out = r.advance(until, ctx, plan);
                 if out.is_err() {
                     ctx.abort.store(true, Ordering::Relaxed);
                 }
@@ -446,7 +546,7 @@ impl Chains {
             })
             .collect();
         let spent = ctx.target.counts().since(&before);
-        if until <= ctx.config.warmup {
+        if until <= warmup_end {
             self.counts_warmup = self.counts_warmup.plus(&spent);
         } else {
             self.counts_sampling = self.counts_sampling.plus(&spent);
@@ -476,21 +576,10 @@ impl Chains {
             draws: pooled.count(),
             counts_warmup: self.counts_warmup,
             counts_sampling: self.counts_sampling,
+            warmup_iterations: self.warmup_end(ctx.config),
+            plan: self.plan.clone(),
         }
     }
-}
-
-/// The end of the segment that starts at iteration `lowest`: the next multiple of the checkpoint
-/// interval, the end of the warm-up, or the end of the run, whichever comes first.
-fn segment_end(lowest: u64, config: &SampleConfig) -> u64 {
-    let every = config.checkpoint_every;
-    let mut until = (lowest / every + 1)
-        .saturating_mul(every)
-        .min(config.iterations());
-    if lowest < config.warmup {
-        until = until.min(config.warmup);
-    }
-    until
 }
 
 /// The error of chain `c` that stopped the run at `iteration`, saying that the state is saved.

@@ -60,6 +60,34 @@ impl std::str::FromStr for KernelKind {
     }
 }
 
+/// How the warm-up of the gradient kernels learns the metric.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+)]
+#[serde(rename_all = "kebab-case")]
+#[value(rename_all = "kebab-case")]
+pub enum MetricLearning {
+    /// Pooled over all chains at barriers, dense or diagonal, shrunk towards the Laplace metric; the
+    /// warm-up ends when it has settled (the default; see [`crate::adapt::plan`]).
+    #[default]
+    Pooled,
+    /// The Laplace metric as it is; the step size alone is adapted, over the whole warm-up.
+    Off,
+    /// Each chain its own diagonal refinement (the first release's `--adapt-metric`).
+    PerChainDiagonal,
+}
+
+impl MetricLearning {
+    /// The name used in options and outputs.
+    pub fn name(&self) -> &'static str {
+        match self {
+            MetricLearning::Pooled => "pooled",
+            MetricLearning::Off => "off",
+            MetricLearning::PerChainDiagonal => "per-chain-diagonal",
+        }
+    }
+}
+
 /// Settings of the HMC kernel.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(default)]
@@ -121,6 +149,10 @@ pub struct SampleConfig {
     /// MALA and HMC: refine the Hessian metric during the warm-up by a diagonal one estimated from the
     /// warm-up draws (default off: the Hessian at the analysis as it is). See [`crate::adapt::warmup`].
     pub adapt_metric: bool,
+    /// How the warm-up learns the metric. `None` in records written before this setting existed,
+    /// which keep their meaning: `adapt_metric` decides (see [`SampleConfig::learning`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub learn_metric: Option<MetricLearning>,
 }
 
 impl Default for SampleConfig {
@@ -139,6 +171,7 @@ impl Default for SampleConfig {
             init_scale: 2.0,
             initial_step_size: None,
             adapt_metric: false,
+            learn_metric: Some(MetricLearning::Pooled),
         }
     }
 }
@@ -212,6 +245,16 @@ impl SampleConfig {
             }
         }
         Ok(())
+    }
+
+    /// How the warm-up learns the metric: `adapt_metric` (the first release's option) asks for the
+    /// per-chain diagonal; otherwise `learn_metric`, and for records from before it, no learning.
+    pub fn learning(&self) -> MetricLearning {
+        if self.adapt_metric {
+            MetricLearning::PerChainDiagonal
+        } else {
+            self.learn_metric.unwrap_or(MetricLearning::Off)
+        }
     }
 
     /// Total iterations per chain: warm-up plus draws × thin.

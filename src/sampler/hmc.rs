@@ -24,8 +24,8 @@ use rand::RngExt;
 
 use super::integrator::{leapfrog, Phase};
 use super::{
-    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, StepSizeSpec,
-    Target,
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, Metric, StepInfo,
+    StepSizeSpec, Target,
 };
 use crate::error::Result;
 
@@ -71,7 +71,7 @@ impl Kernel for Hmc {
         rng: &mut ChainRng,
         state: &ChainState,
         eps: f64,
-        s: &[f64],
+        s: &Metric,
     ) -> Result<(ChainState, StepInfo)> {
         let n = state.u.len();
         let eps_j = eps * rng.random_range(0.9..1.1);
@@ -79,8 +79,7 @@ impl Kernel for Hmc {
         let hi = ((1.2 * self.time / eps_j).ceil() as u64).clamp(lo, u64::from(self.max_steps));
         let n_steps = rng.random_range(lo..=hi) as u32;
 
-        let mut p = standard_normal(rng, n);
-        p.iter_mut().zip(s).for_each(|(pi, si)| *pi /= si.sqrt());
+        let p = s.momentum(&standard_normal(rng, n));
         let mut phase = Phase {
             state: state.clone(),
             p,

@@ -5,7 +5,7 @@
 //!
 //! Reference: Neal 2011, "MCMC using Hamiltonian dynamics", Handbook of MCMC, section 2.3.
 
-use super::{ChainState, Target};
+use super::{ChainState, Metric, Target};
 use crate::error::Result;
 
 /// A point in phase space: position state (with cached log-density and gradient) and momentum.
@@ -18,23 +18,20 @@ pub struct Phase {
 }
 
 impl Phase {
-    /// H = −log π(u) + ½ pᵀ S p for the inverse mass matrix S = diag(s).
-    pub fn energy(&self, s: &[f64]) -> f64 {
-        let kinetic: f64 = self.p.iter().zip(s).map(|(p, si)| si * p * p).sum();
-        -self.state.log_density + 0.5 * kinetic
+    /// H = −log π(u) + ½ pᵀ S p for the inverse mass matrix S.
+    pub fn energy(&self, s: &Metric) -> f64 {
+        -self.state.log_density + s.kinetic(&self.p)
     }
 }
 
 /// One leapfrog step of size `eps` with inverse mass matrix diag(`s`) (one gradient evaluation). Returns `false`, leaving `phase` partly
 /// updated, where the new position could not be evaluated (recoverable failure).
-pub fn leapfrog(target: &Target<'_>, phase: &mut Phase, eps: f64, s: &[f64]) -> Result<bool> {
+pub fn leapfrog(target: &Target<'_>, phase: &mut Phase, eps: f64, s: &Metric) -> Result<bool> {
     let half = 0.5 * eps;
     for (p, g) in phase.p.iter_mut().zip(&phase.state.grad) {
         *p += half * g;
     }
-    for ((u, p), si) in phase.state.u.iter_mut().zip(&phase.p).zip(s) {
-        *u += eps * si * p;
-    }
+    s.drift(&mut phase.state.u, &phase.p, eps);
     let Some(lp) = target.log_density_grad(&phase.state.u, &mut phase.state.grad)? else {
         return Ok(false);
     };

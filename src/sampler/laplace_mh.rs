@@ -16,7 +16,7 @@
 use rand_distr::{ChiSquared, Distribution};
 
 use super::{
-    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, Target,
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, Metric, StepInfo, Target,
 };
 use crate::error::{Error, Result};
 use crate::util::vector::dot;
@@ -84,7 +84,7 @@ impl Kernel for LaplaceMh {
         rng: &mut ChainRng,
         state: &ChainState,
         _step_size: f64,
-        _metric: &[f64],
+        _metric: &Metric,
     ) -> Result<(ChainState, StepInfo)> {
         let u_new = self.draw(rng, state.u.len());
         let Some(lp) = target.log_density(&u_new)? else {

@@ -1,14 +1,14 @@
 //! Preconditioned Metropolis-adjusted Langevin algorithm (MALA) in whitened coordinates.
 //!
-//! With step size ε, g = ∇_u log π(u) and a diagonal metric S = diag(s) (all ones unless the warm-up
-//! refined it), the proposal is one Euler step of the preconditioned Langevin diffusion,
+//! With step size ε, g = ∇_u log π(u) and a metric S = A Aᵀ (the identity unless the warm-up
+//! learned one, see [`super::metric`]), the proposal is one Euler step of the preconditioned Langevin diffusion,
 //!
 //! ```text
-//! u' = u + (ε²/2) S g(u) + ε S^(1/2) z,   z ~ N(0, I),
+//! u' = u + (ε²/2) S g(u) + ε A z,   z ~ N(0, I),
 //! ```
 //!
 //! accepted with probability min(1, π(u') q(u | u') / (π(u) q(u' | u))), where
-//! log q(b | a) = −Σ_i (b_i − a_i − (ε²/2) s_i g_i(a))² / (2ε² s_i) + const. Whitening by the Hessian at
+//! log q(b | a) = −|A⁻¹(b − a − (ε²/2) S g(a))|² / (2ε²) + const. Whitening by the Hessian at
 //! the analysis makes this, with S = I, the Langevin proposal preconditioned by H⁻¹ in model space.
 //!
 //! The proposal variance ε² best scales as d^(−1/3), with mean acceptance about 0.574 at the optimum.
@@ -18,9 +18,10 @@
 //! approximations to Langevin diffusions", JRSS-B 60(1).
 
 use super::{
-    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, StepInfo, StepSizeSpec,
-    Target,
+    mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, Metric, StepInfo,
+    StepSizeSpec, Target,
 };
+use crate::util::vector::dot;
 use crate::error::Result;
 
 /// MALA; the step size is passed to each step.
@@ -28,15 +29,13 @@ use crate::error::Result;
 pub struct Mala;
 
 /// log q(to | from) up to a constant, for the Langevin proposal with step `eps` and metric `s`.
-fn log_q(to: &[f64], from: &ChainState, eps: f64, s: &[f64]) -> f64 {
+/// log q(b | a) = −|A⁻¹ (b − a − (ε²/2) S g(a))|² / (2ε²) + const, with S = A Aᵀ.
+fn log_q(to: &[f64], from: &ChainState, eps: f64, s: &Metric) -> f64 {
     let h = 0.5 * eps * eps;
-    let sum: f64 = (0..to.len())
-        .map(|i| {
-            let r = to[i] - from.u[i] - h * s[i] * from.grad[i];
-            r * r / s[i]
-        })
-        .sum();
-    -sum / (2.0 * eps * eps)
+    let sg = s.mul(&from.grad);
+    let r: Vec<f64> = (0..to.len()).map(|i| to[i] - from.u[i] - h * sg[i]).collect();
+    let w = s.solve_sqrt(&r);
+    -dot(&w, &w) / (2.0 * eps * eps)
 }
 
 impl Kernel for Mala {
@@ -59,13 +58,14 @@ impl Kernel for Mala {
         rng: &mut ChainRng,
         state: &ChainState,
         eps: f64,
-        s: &[f64],
+        s: &Metric,
     ) -> Result<(ChainState, StepInfo)> {
         let n = state.u.len();
         let h = 0.5 * eps * eps;
         let z = standard_normal(rng, n);
+        let (sg, az) = (s.mul(&state.grad), s.mul_sqrt(&z));
         let u_new: Vec<f64> = (0..n)
-            .map(|i| state.u[i] + h * s[i] * state.grad[i] + eps * s[i].sqrt() * z[i])
+            .map(|i| state.u[i] + h * sg[i] + eps * az[i])
             .collect();
         let mut grad = vec![0.0; n];
         let Some(lp) = target.log_density_grad(&u_new, &mut grad)? else {

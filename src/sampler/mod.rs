@@ -51,10 +51,11 @@ pub mod welford;
 
 pub use chain::{run, ChainSummary, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
-pub use config::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
+pub use config::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use ensemble::{ChainDraws, Ensemble, WeightedDraws};
 pub use target::{CountedProblem, Target};
+pub use crate::adapt::Metric;
 pub use welford::Welford;
 
 use rand::RngExt;
@@ -175,8 +176,8 @@ pub trait Kernel: Send + Sync {
         }
     }
 
-    /// step: one transition from `state` with step size `step_size` and the diagonal inverse mass
-    /// matrix `metric` (whitened coordinates; all ones means the preconditioner as it is; kernels
+    /// step: one transition from `state` with step size `step_size` and the inverse mass matrix
+    /// `metric` (whitened coordinates; the unit metric means the preconditioner as it is; kernels
     /// without a step size ignore it). Errors are only the non-recoverable evaluation failures.
     fn step(
         &self,
@@ -184,7 +185,7 @@ pub trait Kernel: Send + Sync {
         rng: &mut ChainRng,
         state: &ChainState,
         step_size: f64,
-        metric: &[f64],
+        metric: &Metric,
     ) -> Result<(ChainState, StepInfo)>;
 }
 

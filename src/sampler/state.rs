@@ -106,6 +106,9 @@ pub struct ChainCheckpoint {
     pub stats: ChainStats,
     /// Running moments of the kept draws (model space).
     pub moments: Welford,
+    /// Whitened positions of the current window of the pooled warm-up (absent from older files).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub window: Vec<Vec<f64>>,
 }
 
 #[cfg(test)]

@@ -12,6 +12,7 @@ use std::path::{Path, PathBuf};
 use super::config::SampleConfig;
 pub use super::state::{ChainCheckpoint, RngState};
 use super::target::{Fnv64, Target};
+use crate::adapt::WarmupPlan;
 use crate::error::{Error, Result};
 use crate::problem::EvalCounts;
 use crate::util::atomic::write_atomic;
@@ -21,7 +22,7 @@ mod validate;
 /// Version of the checkpoint layout written by this build. A change of the layout raises it and adds
 /// a reader for the old version in [`Checkpoint::decode`]; tests/it/fixtures/checkpoint-v1/ holds a
 /// file of version 1 that must keep loading.
-pub const FORMAT_VERSION: u32 = 1;
+pub const FORMAT_VERSION: u32 = 2;
 const FILE_NAME: &str = "checkpoint.vpck";
 
 /// The checkpoint file of an output folder.
@@ -51,6 +52,9 @@ pub struct Checkpoint {
     pub counts_warmup: EvalCounts,
     /// Evaluations during sampling so far.
     pub counts_sampling: EvalCounts,
+    /// The pooled warm-up's plan (absent from version 1 and from runs that do not pool).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub plan: Option<WarmupPlan>,
     /// Whether the run had finished when this was written.
     pub complete: bool,
 }
@@ -88,8 +92,9 @@ impl Checkpoint {
         let bad = |m: String| Error::format(path, m);
         let (version, payload) = split_header(bytes).map_err(bad)?;
         let ck = match version {
-            // Version 1 (varpost 0.1) is the current layout.
-            1 => serde_json::from_slice::<Checkpoint>(payload)
+            // Version 2 added the pooled warm-up's plan and windows, absent (and not needed) in
+            // version 1 (varpost 0.1), which reads with the same layout.
+            1 | 2 => serde_json::from_slice::<Checkpoint>(payload)
                 .map_err(|e| bad(format!("checkpoint content is invalid: {e}")))?,
             v => return Err(bad(unsupported_version(v))),
         };

@@ -72,6 +72,7 @@ fn fresh(kernel: KernelKind, dim: usize, chains: usize) -> Checkpoint {
                 warmup,
                 stats: Default::default(),
                 moments: Welford::new(dim),
+                window: Vec::new(),
             }
         })
         .collect();
@@ -85,6 +86,7 @@ fn fresh(kernel: KernelKind, dim: usize, chains: usize) -> Checkpoint {
         chains,
         counts_warmup: Default::default(),
         counts_sampling: Default::default(),
+        plan: None,
         complete: false,
     }
 }

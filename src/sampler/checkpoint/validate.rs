@@ -14,7 +14,10 @@ use crate::sampler::ChainRng;
 /// What every chain of the run must agree with.
 struct Expect {
     dim: usize,
+    /// Where the warm-up ends.
     warmup: u64,
+    /// The warm-up's longest length (the schedule's `total`).
+    warmup_max: u64,
     thin: u64,
     total: u64,
     uses_gradient: bool,
@@ -35,11 +38,17 @@ pub(super) fn validate(ck: &Checkpoint) -> Result<(), String> {
             config.chains
         ));
     }
+    if let Some(p) = &ck.plan {
+        p.check(config.warmup, ck.dim)
+            .map_err(|m| format!("plan: {m}"))?;
+    }
+    let warmup = ck.plan.as_ref().map_or(config.warmup, |p| p.end);
     let expect = Expect {
         dim: ck.dim,
-        warmup: config.warmup,
+        warmup,
+        warmup_max: config.warmup,
         thin: config.thin,
-        total: config.iterations(),
+        total: warmup + config.draws * config.thin,
         uses_gradient: kernel.spec(ck.dim).uses_gradient,
         seed: ChainRng::seed_from_u64(config.seed).get_seed(),
     };
@@ -91,8 +100,11 @@ fn check_chain(c: usize, ch: &ChainCheckpoint, e: &Expect) -> Result<(), String>
             ch.step_size
         ));
     }
+    if ch.window.iter().any(|u| u.len() != e.dim || !u.iter().all(|v| v.is_finite())) {
+        return Err("window: a position has the wrong length or a non-finite entry".into());
+    }
     ch.warmup
-        .check(e.dim, e.warmup, in_warmup)
+        .check(e.dim, e.warmup_max, in_warmup)
         .map_err(|m| format!("warmup: {m}"))?;
     if ch.rng.seed() != e.seed || ch.rng.stream() != c as u64 {
         return Err(format!(
