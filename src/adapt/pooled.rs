@@ -1,8 +1,8 @@
 //! The metric learned from the warm-up draws of all chains pooled: their covariance in whitened
 //! coordinates, shrunk towards the identity (the Laplace metric, which whitening makes I).
 //!
-//! With N pooled draws x_k, their mean m, X_k = x_k − m and the sample covariance
-//! S = (1/N) Σ_k X_k X_kᵀ, the estimate is
+//! With N pooled draws x_k, each centred at the mean of its own chain, X_k = x_k − m_c(k), and the
+//! pooled within-chain covariance S = (1/N) Σ_k X_k X_kᵀ, the estimate is
 //!
 //! ```text
 //! Σ* = ρ I + (1 − ρ) S,    ρ = min(1, β² / δ²),
@@ -16,6 +16,10 @@
 //! matrix estimation", Stat. Appl. Genet. Mol. Biol. 4(1)). The identity for β² follows from
 //! Σ_k X_kᵀ S X_k = N ‖S‖²_F. The draws of a Markov chain are correlated, so β² (which assumes
 //! independent draws) understates the estimate's noise and ρ errs towards less shrinkage.
+//!
+//! Centring each chain at its own mean keeps chains that have not yet met from widening the metric by
+//! the distance between them (the within-chain variance W of the potential scale reduction, Gelman
+//! & Rubin 1992); once they have met the two centrings agree.
 //!
 //! - Dense (n ≤ [`DENSE_MAX`]): Σ* in full, stored by its eigenvectors.
 //! - Larger n: the diagonal only, each variance shrunk with the same formula restricted to the
@@ -40,22 +44,26 @@ pub struct Estimate {
     pub draws: usize,
 }
 
-/// The metric estimated from `draws` (whitened positions of every chain, in a fixed order), or
-/// `None` with fewer than two draws.
-pub fn estimate(draws: &[&[f64]], n: usize) -> Option<Estimate> {
-    let big_n = draws.len();
+/// The metric estimated from `chains` (each chain's whitened positions, chains in a fixed order), or
+/// `None` with fewer than two draws in all.
+pub fn estimate(chains: &[&[Vec<f64>]], n: usize) -> Option<Estimate> {
+    let big_n: usize = chains.iter().map(|c| c.len()).sum();
     if big_n < 2 {
         return None;
     }
-    let nf = big_n as f64;
-    let mut mean = vec![0.0; n];
-    for x in draws {
-        mean.iter_mut().zip(x.iter()).for_each(|(m, v)| *m += v / nf);
+    let mut centred: Vec<Vec<f64>> = Vec::with_capacity(big_n);
+    for draws in chains.iter().filter(|c| !c.is_empty()) {
+        let k = draws.len() as f64;
+        let mut mean = vec![0.0; n];
+        for x in draws.iter() {
+            mean.iter_mut().zip(x).for_each(|(m, v)| *m += v / k);
+        }
+        centred.extend(
+            draws
+                .iter()
+                .map(|x| x.iter().zip(&mean).map(|(v, m)| v - m).collect::<Vec<f64>>()),
+        );
     }
-    let centred: Vec<Vec<f64>> = draws
-        .iter()
-        .map(|x| x.iter().zip(&mean).map(|(v, m)| v - m).collect())
-        .collect();
     let (metric, shrinkage) = if n <= DENSE_MAX {
         dense(&centred, n)
     } else {
@@ -179,8 +187,7 @@ mod tests {
     #[test]
     fn many_draws_give_the_covariance_and_little_shrinkage() {
         let x = correlated(20_000);
-        let refs: Vec<&[f64]> = x.iter().map(|v| v.as_slice()).collect();
-        let e = estimate(&refs, 2).unwrap();
+        let e = estimate(&[&x], 2).unwrap();
         assert!(e.shrinkage < 0.01, "ρ = {}", e.shrinkage);
         let s = e.metric.mul(&[1.0, 0.0]);
         // Closed form C e_1 = (4, 1.2), within the sampling error of 20 000 draws.
@@ -190,13 +197,11 @@ mod tests {
     #[test]
     fn few_draws_are_shrunk_towards_the_identity() {
         let x = correlated(3);
-        let refs: Vec<&[f64]> = x.iter().map(|v| v.as_slice()).collect();
-        let few = estimate(&refs, 2).unwrap();
+        let few = estimate(&[&x], 2).unwrap();
         let x = correlated(2000);
-        let refs: Vec<&[f64]> = x.iter().map(|v| v.as_slice()).collect();
-        let many = estimate(&refs, 2).unwrap();
+        let many = estimate(&[&x[..1000], &x[1000..]], 2).unwrap();
         assert!(few.shrinkage > many.shrinkage);
-        assert!(estimate(&refs[..1], 2).is_none());
+        assert!(estimate(&[&x[..1]], 2).is_none());
     }
 
     #[test]
@@ -206,9 +211,20 @@ mod tests {
         let x: Vec<Vec<f64>> = (0..200)
             .map(|_| (0..5).map(|_| StandardNormal.sample(&mut rng)).collect())
             .collect();
-        let refs: Vec<&[f64]> = x.iter().map(|v| v.as_slice()).collect();
-        let e = estimate(&refs, 5).unwrap();
+        let e = estimate(&[&x], 5).unwrap();
         assert!(e.shrinkage > 0.5, "ρ = {}", e.shrinkage);
+    }
+
+    #[test]
+    fn chains_apart_do_not_widen_the_metric() {
+        // Two chains with the same draws, one shifted by 10: the within-chain covariance is that of
+        // one chain, not widened by the shift (Gelman & Rubin 1992's W).
+        let x = correlated(2000);
+        let shifted: Vec<Vec<f64>> = x.iter().map(|v| vec![v[0] + 10.0, v[1]]).collect();
+        let one = estimate(&[&x], 2).unwrap();
+        let two = estimate(&[&x, &shifted], 2).unwrap();
+        let (a, b) = (one.metric.diagonal_of(), two.metric.diagonal_of());
+        assert!((a[0] - b[0]).abs() < 1e-2 * a[0], "{a:?} {b:?}");
     }
 
     #[test]
@@ -225,8 +241,7 @@ mod tests {
                     .collect()
             })
             .collect();
-        let refs: Vec<&[f64]> = x.iter().map(|v| v.as_slice()).collect();
-        let e = estimate(&refs, n).unwrap();
+        let e = estimate(&[&x], n).unwrap();
         assert_eq!(e.metric.rank(), 0);
         let d = e.metric.diagonal_of();
         let mean = d.iter().sum::<f64>() / n as f64;

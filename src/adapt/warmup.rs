@@ -146,10 +146,16 @@ impl Warmup {
         })
     }
 
-    /// Restarts dual averaging from step size `eps` (at a barrier of the pooled warm-up).
+    /// Restarts dual averaging from step size `eps` (at a barrier of the pooled warm-up), shrinking
+    /// towards `eps` itself rather than towards 10 `eps` as at the start: the pooled step size of all
+    /// chains is already a good guess, and a short window cannot afford to explore far from it.
     pub fn restart(&mut self, eps: f64) -> Result<()> {
         if let Some(c) = self.controller.as_mut() {
-            *c = DualAveraging::new(eps, c.target(), self.settings)?;
+            let centred = DualAveragingSettings {
+                mu_factor: 1.0,
+                ..self.settings
+            };
+            *c = DualAveraging::new(eps, c.target(), centred)?;
         }
         Ok(())
     }

@@ -370,10 +370,10 @@ pub struct ChainArgs {
     /// Gaussian).
     #[arg(long, allow_negative_numbers = true, value_parser = parse::positive)]
     pub t_dof: Option<f64>,
-    /// How the warm-up learns the metric (MALA and HMC): pooled over all chains and ended once
-    /// settled (default), off (the Laplace metric as it is), or per-chain-diagonal (each chain its
-    /// own diagonal, over the whole warm-up).
-    #[arg(long, value_enum, default_value_t = MetricLearning::Pooled)]
+    /// How the warm-up learns the metric: pooled over all chains and ended once settled, off (the
+    /// Laplace metric as it is), per-chain-diagonal (each chain its own diagonal, over the whole
+    /// warm-up), or auto (the default: pooled for HMC and NUTS, off for MALA).
+    #[arg(long, value_enum, default_value_t = MetricLearning::Auto)]
     pub learn_metric: MetricLearning,
     /// The first release's name for --learn-metric per-chain-diagonal.
     #[arg(long, conflicts_with = "learn_metric")]

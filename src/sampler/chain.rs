@@ -163,7 +163,7 @@ impl Runner {
                 config.initial_step_size.unwrap_or(spec.initial),
                 config.target_accept.unwrap_or(spec.target_accept),
                 true,
-                config.adapt_metric,
+                config.learning() == MetricLearning::PerChainDiagonal,
             )?,
             // No step size: the schedule only counts the burn-in iterations.
             None => Warmup::init(config.warmup, n, 1.0, 0.5, false, false)?,
@@ -503,12 +503,9 @@ impl Chains {
         }
         let steps: Vec<f64> = self.runners.iter().map(|r| r.warmup.finish()).collect();
         if plan.window_ends_at(at) {
-            let draws: Vec<&[f64]> = self
-                .runners
-                .iter()
-                .flat_map(|r| r.window.iter().map(Vec::as_slice))
-                .collect();
-            let step = plan.close_window(at, &draws, &steps);
+            let windows: Vec<&[Vec<f64>]> =
+                self.runners.iter().map(|r| r.window.as_slice()).collect();
+            let step = plan.close_window(at, &windows, &steps);
             for r in self.runners.iter_mut() {
                 r.window.clear();
                 r.warmup.restart(step)?;

@@ -67,9 +67,14 @@ impl std::str::FromStr for KernelKind {
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
 pub enum MetricLearning {
-    /// Pooled over all chains at barriers, dense or diagonal, shrunk towards the Laplace metric; the
-    /// warm-up ends when it has settled (the default; see [`crate::adapt::plan`]).
+    /// The kernel's own default (the default): pooled for HMC and NUTS; off for MALA, whose chains
+    /// move too slowly in a warm-up window for its draws to describe the posterior's spread
+    /// (measured on lorenz96: 48 to 117 bulk effective draws with the pooled metric against 200
+    /// without).
     #[default]
+    Auto,
+    /// Pooled over all chains at barriers, dense or diagonal, shrunk towards the Laplace metric; the
+    /// warm-up ends when it has settled (see [`crate::adapt::plan`]).
     Pooled,
     /// The Laplace metric as it is; the step size alone is adapted, over the whole warm-up.
     Off,
@@ -81,6 +86,7 @@ impl MetricLearning {
     /// The name used in options and outputs.
     pub fn name(&self) -> &'static str {
         match self {
+            MetricLearning::Auto => "auto",
             MetricLearning::Pooled => "pooled",
             MetricLearning::Off => "off",
             MetricLearning::PerChainDiagonal => "per-chain-diagonal",
@@ -171,7 +177,7 @@ impl Default for SampleConfig {
             init_scale: 2.0,
             initial_step_size: None,
             adapt_metric: false,
-            learn_metric: Some(MetricLearning::Pooled),
+            learn_metric: Some(MetricLearning::Auto),
         }
     }
 }
@@ -248,12 +254,16 @@ impl SampleConfig {
     }
 
     /// How the warm-up learns the metric: `adapt_metric` (the first release's option) asks for the
-    /// per-chain diagonal; otherwise `learn_metric`, and for records from before it, no learning.
+    /// per-chain diagonal; otherwise `learn_metric` with `auto` resolved for the kernel, and for
+    /// records from before it, no learning.
     pub fn learning(&self) -> MetricLearning {
         if self.adapt_metric {
-            MetricLearning::PerChainDiagonal
-        } else {
-            self.learn_metric.unwrap_or(MetricLearning::Off)
+            return MetricLearning::PerChainDiagonal;
+        }
+        match self.learn_metric.unwrap_or(MetricLearning::Off) {
+            MetricLearning::Auto if self.kernel == KernelKind::Mala => MetricLearning::Off,
+            MetricLearning::Auto => MetricLearning::Pooled,
+            other => other,
         }
     }
 

@@ -147,12 +147,18 @@ impl Checkpoint {
                     .into(),
             );
         }
-        // The checkpoint interval does not change what the chains compute, so it may differ.
+        // The checkpoint interval does not change what the chains compute, so it may differ; the way
+        // of learning the metric is compared by what it means (older files leave it unset).
         let saved = SampleConfig {
             checkpoint_every: config.checkpoint_every,
+            learn_metric: Some(self.config.learning()),
             ..self.config.clone()
         };
-        if &saved != config {
+        let given = SampleConfig {
+            learn_metric: Some(config.learning()),
+            ..config.clone()
+        };
+        if saved != given {
             return bad(format!(
                 "checkpoint settings differ from this run's: saved {:?}, given {:?}",
                 self.config, config
