@@ -45,6 +45,7 @@ pub mod importance;
 pub mod integrator;
 pub mod laplace_mh;
 pub mod mala;
+pub mod nuts;
 pub mod state;
 pub mod target;
 pub mod welford;

@@ -1,0 +1,1 @@
+//! Unit tests of the NUTS kernel on Gaussians whose moments are known in closed form.
