@@ -172,6 +172,14 @@ fn hmc_leaves_a_gaussian_invariant() {
 }
 
 #[test]
+fn nuts_leaves_a_gaussian_invariant() {
+    let r = check_gaussian(KernelKind::Nuts, false, "nuts-gauss");
+    // Every leapfrog step is one gradient evaluation; at least one per iteration.
+    let steps: u64 = r.chains.iter().map(|c| c.stats.sampling.steps).sum();
+    assert_eq!(r.counts_sampling.gradient, steps);
+}
+
+#[test]
 fn laplace_mh_leaves_a_gaussian_invariant() {
     let r = check_gaussian(KernelKind::LaplaceMh, false, "lmh-gauss");
     // No gradient per step: one forward run each (common practice of independence samplers).
@@ -276,6 +284,7 @@ fn nonfinite_costs_are_rejections_and_the_truncated_target_is_sampled() {
     for (kernel, t) in [
         (KernelKind::Mala, None),
         (KernelKind::Hmc, None),
+        (KernelKind::Nuts, None),
         (KernelKind::LaplaceMh, Some(4.0)),
     ] {
         let a = DMatrix::from_diagonal(&DVector::from_vec(vec![4.0, 1.0]));
@@ -318,7 +327,12 @@ fn kernels_reproduce_the_linear_gaussian_closed_form() {
         rank: 4,
         ..Default::default()
     };
-    for kernel in [KernelKind::Mala, KernelKind::Hmc, KernelKind::LaplaceMh] {
+    for kernel in [
+        KernelKind::Mala,
+        KernelKind::Hmc,
+        KernelKind::LaplaceMh,
+        KernelKind::Nuts,
+    ] {
         let lg = LinearGaussian::new(lg_cfg.clone()).unwrap();
         let reference = lg.reference().unwrap();
         let n = lg.dim();
