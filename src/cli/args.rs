@@ -368,6 +368,7 @@ pub struct ChainArgs {
     /// NUTS: cap on the doublings of the trajectory per iteration, 1 to 20 (at most 2^depth − 1
     /// leapfrog steps, each a model and adjoint run).
     #[arg(long, default_value_t = SampleConfig::default().nuts.max_depth,
+          allow_negative_numbers = true,
           value_parser = clap::value_parser!(u32).range(1..=i64::from(MAX_TREE_DEPTH)))]
     pub nuts_max_depth: u32,
     /// Laplace-MH: degrees of freedom of a Student-t proposal, above 0 (default: the Laplace
