@@ -17,8 +17,7 @@ use crate::optimize::MapConfig;
 use crate::output::progress::LogFormat;
 use crate::pipeline::MapRunConfig;
 use crate::precond::LaplaceOptions;
-use crate::sampler::config::MAX_CHAINS;
-use crate::sampler::config::NutsSettings;
+use crate::sampler::config::{NutsSettings, MAX_CHAINS};
 use crate::sampler::nuts::MAX_TREE_DEPTH;
 use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
 

@@ -282,7 +282,10 @@ mod tests {
         assert!(e.unwrap_err().to_string().contains("target acceptance"));
         use clap::ValueEnum;
         assert!(KernelKind::from_str("nut", false).is_err());
-        assert_eq!(KernelKind::from_str("nuts", false).unwrap(), KernelKind::Nuts);
+        assert_eq!(
+            KernelKind::from_str("nuts", false).unwrap(),
+            KernelKind::Nuts
+        );
         for depth in [0, 21] {
             let e = SampleConfig {
                 nuts: NutsSettings { max_depth: depth },

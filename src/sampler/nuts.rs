@@ -190,9 +190,25 @@ fn merge(
     } else {
         (outer, inner)
     };
-    let rho: Vec<f64> = left.rho.iter().zip(&right.rho).map(|(a, b)| a + b).collect();
-    let cross_left: Vec<f64> = left.rho.iter().zip(&right.minus.p).map(|(a, b)| a + b).collect();
-    let cross_right: Vec<f64> = left.plus.p.iter().zip(&right.rho).map(|(a, b)| a + b).collect();
+    let rho: Vec<f64> = left
+        .rho
+        .iter()
+        .zip(&right.rho)
+        .map(|(a, b)| a + b)
+        .collect();
+    let cross_left: Vec<f64> = left
+        .rho
+        .iter()
+        .zip(&right.minus.p)
+        .map(|(a, b)| a + b)
+        .collect();
+    let cross_right: Vec<f64> = left
+        .plus
+        .p
+        .iter()
+        .zip(&right.rho)
+        .map(|(a, b)| a + b)
+        .collect();
     let turned = !no_u_turn(s, &rho, &left.minus.p, &right.plus.p)
         || !no_u_turn(s, &cross_left, &left.minus.p, &right.minus.p)
         || !no_u_turn(s, &cross_right, &left.plus.p, &right.plus.p);

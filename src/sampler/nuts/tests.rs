@@ -63,7 +63,13 @@ fn run_chains(
 ) -> (Vec<Vec<Vec<f64>>>, Vec<StepInfo>) {
     let n = problem.n;
     let counted = Counted::new(problem);
-    let target = Target::new(&counted, "q", vec![0.0; n], Arc::new(IdentityPrecond::new(n))).unwrap();
+    let target = Target::new(
+        &counted,
+        "q",
+        vec![0.0; n],
+        Arc::new(IdentityPrecond::new(n)),
+    )
+    .unwrap();
     let kernel = Nuts::new(10).unwrap();
     let mut out = Vec::new();
     let mut infos = Vec::new();
@@ -85,7 +91,10 @@ fn run_chains(
 
 /// Component `i` of `[chain][draw]` positions, transformed by `f`.
 fn series(draws: &[Vec<Vec<f64>>], f: impl Fn(&[f64]) -> f64) -> Vec<Vec<f64>> {
-    draws.iter().map(|c| c.iter().map(|x| f(x)).collect()).collect()
+    draws
+        .iter()
+        .map(|c| c.iter().map(|x| f(x)).collect())
+        .collect()
 }
 
 /// The mean of f within 4 MCSE (the project's `mcse_mean`) of `want`.
@@ -94,7 +103,10 @@ fn check_mean(s: &[Vec<f64>], want: f64, what: &str) {
     let all: Vec<f64> = s.iter().flatten().copied().collect();
     let m = all.iter().sum::<f64>() / all.len() as f64;
     let e = mcse_mean(&refs).unwrap();
-    assert!((m - want).abs() < 4.0 * e, "{what}: mean {m} vs {want}, MCSE {e}");
+    assert!(
+        (m - want).abs() < 4.0 * e,
+        "{what}: mean {m} vs {want}, MCSE {e}"
+    );
 }
 
 /// The variance of x within 4 MCSE of `want`; MCSE of the variance = 2 sd · MCSE of the sd (the
@@ -105,7 +117,10 @@ fn check_var(s: &[Vec<f64>], want: f64, what: &str) {
     let m = all.iter().sum::<f64>() / all.len() as f64;
     let v = all.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (all.len() - 1) as f64;
     let e = 2.0 * v.sqrt() * mcse_sd(&refs).unwrap();
-    assert!((v - want).abs() < 4.0 * e, "{what}: variance {v} vs {want}, MCSE {e}");
+    assert!(
+        (v - want).abs() < 4.0 * e,
+        "{what}: variance {v} vs {want}, MCSE {e}"
+    );
 }
 
 /// Standard normal in 5 dimensions (closed form: mean 0, variance 1), unit metric.
@@ -145,16 +160,24 @@ fn correlated_gaussian_moments_within_4_mcse() {
 /// standard errors of independent draws (Var x = 1, Var x² = 2, Var x⁴ = 105 − 9 = 96).
 #[test]
 fn one_step_from_exact_draws_preserves_the_standard_normal() {
-    let (d, infos) = run_chains(Quadratic::identity(2, 1.0), &[1.0; 2], 1.3, 20_000, 1, |r| {
-        standard_normal(r, 2)
-    });
+    let (d, infos) = run_chains(
+        Quadratic::identity(2, 1.0),
+        &[1.0; 2],
+        1.3,
+        20_000,
+        1,
+        |r| standard_normal(r, 2),
+    );
     let n = d.len() as f64;
     for i in 0..2 {
         let x: Vec<f64> = d.iter().map(|c| c[0][i]).collect();
         for (k, want, var) in [(1, 0.0, 1.0), (2, 1.0, 2.0), (4, 3.0, 96.0)] {
             let m = x.iter().map(|v| v.powi(k)).sum::<f64>() / n;
             let se = (var / n).sqrt();
-            assert!((m - want).abs() < 4.0 * se, "x{i}: E x^{k} = {m} vs {want} (SE {se})");
+            assert!(
+                (m - want).abs() < 4.0 * se,
+                "x{i}: E x^{k} = {m} vs {want} (SE {se})"
+            );
         }
     }
     // The step size is large enough that the trajectory points are weighted unequally.
@@ -167,7 +190,13 @@ fn one_step_from_exact_draws_preserves_the_standard_normal() {
 #[test]
 fn tree_depth_cap_and_honest_step_count() {
     let counted = Counted::new(Quadratic::identity(3, 1.0));
-    let target = Target::new(&counted, "q", vec![0.0; 3], Arc::new(IdentityPrecond::new(3))).unwrap();
+    let target = Target::new(
+        &counted,
+        "q",
+        vec![0.0; 3],
+        Arc::new(IdentityPrecond::new(3)),
+    )
+    .unwrap();
     for max_depth in 1..=6u32 {
         let kernel = Nuts::new(max_depth).unwrap();
         let cap = (1u32 << max_depth) - 1;
@@ -176,8 +205,14 @@ fn tree_depth_cap_and_honest_step_count() {
         for eps in [1e-4, 0.3, 0.9] {
             for _ in 0..50 {
                 let before = counted.counts().gradient;
-                let (next, info) = kernel.step(&target, &mut rng, &state, eps, &[1.0; 3]).unwrap();
-                assert!(info.n_steps >= 1 && info.n_steps <= cap, "{max_depth}: {}", info.n_steps);
+                let (next, info) = kernel
+                    .step(&target, &mut rng, &state, eps, &[1.0; 3])
+                    .unwrap();
+                assert!(
+                    info.n_steps >= 1 && info.n_steps <= cap,
+                    "{max_depth}: {}",
+                    info.n_steps
+                );
                 assert_eq!(counted.counts().gradient - before, u64::from(info.n_steps));
                 if eps == 1e-4 {
                     assert_eq!(info.n_steps, cap);
@@ -197,11 +232,19 @@ fn tree_depth_cap_and_honest_step_count() {
 #[test]
 fn divergent_target_is_flagged_and_the_chain_stays() {
     let counted = Counted::new(Quadratic::identity(2, 1e8));
-    let target = Target::new(&counted, "q", vec![0.0; 2], Arc::new(IdentityPrecond::new(2))).unwrap();
+    let target = Target::new(
+        &counted,
+        "q",
+        vec![0.0; 2],
+        Arc::new(IdentityPrecond::new(2)),
+    )
+    .unwrap();
     let kernel = Nuts::new(10).unwrap();
     let mut rng = ChainRng::seed_from_u64(3);
     let state = kernel.init(&target, vec![1e-4, 0.0]).unwrap().unwrap();
-    let (next, info) = kernel.step(&target, &mut rng, &state, 1.0, &[1.0; 2]).unwrap();
+    let (next, info) = kernel
+        .step(&target, &mut rng, &state, 1.0, &[1.0; 2])
+        .unwrap();
     assert!(info.divergent && !info.accepted);
     assert_eq!(info.n_steps, 1);
     assert_eq!(info.accept_prob, 0.0);
@@ -215,13 +258,21 @@ fn failed_evaluations_stop_the_tree_without_panic() {
     let mut q = Quadratic::identity(2, 1.0);
     q.fail_beyond = 0.01;
     let counted = Counted::new(q);
-    let target = Target::new(&counted, "q", vec![0.0; 2], Arc::new(IdentityPrecond::new(2))).unwrap();
+    let target = Target::new(
+        &counted,
+        "q",
+        vec![0.0; 2],
+        Arc::new(IdentityPrecond::new(2)),
+    )
+    .unwrap();
     let kernel = Nuts::new(10).unwrap();
     let mut rng = ChainRng::seed_from_u64(5);
     let mut state = kernel.init(&target, vec![0.0, 0.0]).unwrap().unwrap();
     let mut failed = 0;
     for _ in 0..50 {
-        let (next, info) = kernel.step(&target, &mut rng, &state, 0.5, &[1.0; 2]).unwrap();
+        let (next, info) = kernel
+            .step(&target, &mut rng, &state, 0.5, &[1.0; 2])
+            .unwrap();
         failed += usize::from(info.nonfinite);
         assert!(next.u[0].abs() <= 0.01 && next.log_density.is_finite());
         state = next;
@@ -233,9 +284,14 @@ fn failed_evaluations_stop_the_tree_without_panic() {
 #[test]
 fn same_seed_is_bit_identical() {
     let run = || {
-        run_chains(Quadratic::identity(3, 2.0), &[1.0, 0.5, 2.0], 0.7, 2, 200, |r| {
-            standard_normal(r, 3)
-        })
+        run_chains(
+            Quadratic::identity(3, 2.0),
+            &[1.0, 0.5, 2.0],
+            0.7,
+            2,
+            200,
+            |r| standard_normal(r, 3),
+        )
     };
     let (a, ia) = run();
     let (b, ib) = run();
