@@ -28,7 +28,7 @@
 //! - **Acceptance statistic** (the input of dual averaging; Hoffman & Gelman 2014, section 3.2, for
 //!   multinomial sampling): the mean over every point the integrator produced in this step (also the
 //!   points of a discarded last subtree) of min(1, exp(H₀ − H)), a failed or divergent point counting
-//!   0. Its default target is 0.8.
+//!   0. Its default target is 0.8 (common practice, no source).
 //! - **Divergence**: a point with H − H₀ above [`DIVERGENCE_THRESHOLD`] or a non-finite H stops the
 //!   doubling, and the subtree it belongs to is not sampled from (`divergent`). A failed evaluation
 //!   (the model could not be run at a point) is handled the same way and reported as `nonfinite`.
@@ -284,8 +284,8 @@ impl Walk<'_, '_> {
 }
 
 impl Kernel for Nuts {
-    /// Target acceptance 0.8 for the statistic of the module docs (the value Hoffman & Gelman 2014,
-    /// section 3.2, found robust; the option `target_accept` overrides it); ε₀ = d^(−1/4) as for HMC.
+    /// Target 0.8 for the acceptance statistic of the module docs (common practice for NUTS, no
+    /// source; the option `target_accept` overrides it); ε₀ = d^(−1/4) as for HMC.
     fn spec(&self, n: usize) -> KernelSpec {
         KernelSpec {
             name: "nuts",
