@@ -156,32 +156,30 @@ fn correlated_gaussian_moments_within_4_mcse() {
 
 /// One step from exact draws of N(0, I₂) must leave N(0, I₂) exactly invariant (closed form: E x = 0,
 /// E x² = 1, E x⁴ = 3 per component). 20 000 independent chains, one step each, with a large step
-/// size (ε = 1.3: large energy errors, so that the multinomial weights matter); each moment within 4
+/// size (ε = 1.3: large energy errors, so that the multinomial weights matter), with the unit metric
+/// and with S = diag(0.5, 2) (the momentum draw must match the kinetic energy); each moment within 4
 /// standard errors of independent draws (Var x = 1, Var x² = 2, Var x⁴ = 105 − 9 = 96).
 #[test]
 fn one_step_from_exact_draws_preserves_the_standard_normal() {
-    let (d, infos) = run_chains(
-        Quadratic::identity(2, 1.0),
-        &[1.0; 2],
-        1.3,
-        20_000,
-        1,
-        |r| standard_normal(r, 2),
-    );
-    let n = d.len() as f64;
-    for i in 0..2 {
-        let x: Vec<f64> = d.iter().map(|c| c[0][i]).collect();
-        for (k, want, var) in [(1, 0.0, 1.0), (2, 1.0, 2.0), (4, 3.0, 96.0)] {
-            let m = x.iter().map(|v| v.powi(k)).sum::<f64>() / n;
-            let se = (var / n).sqrt();
-            assert!(
-                (m - want).abs() < 4.0 * se,
-                "x{i}: E x^{k} = {m} vs {want} (SE {se})"
-            );
+    for s in [[1.0, 1.0], [0.5, 2.0]] {
+        let (d, infos) = run_chains(Quadratic::identity(2, 1.0), &s, 1.3, 20_000, 1, |r| {
+            standard_normal(r, 2)
+        });
+        let n = d.len() as f64;
+        for i in 0..2 {
+            let x: Vec<f64> = d.iter().map(|c| c[0][i]).collect();
+            for (k, want, var) in [(1, 0.0, 1.0), (2, 1.0, 2.0), (4, 3.0, 96.0)] {
+                let m = x.iter().map(|v| v.powi(k)).sum::<f64>() / n;
+                let se = (var / n).sqrt();
+                assert!(
+                    (m - want).abs() < 4.0 * se,
+                    "metric {s:?} x{i}: E x^{k} = {m} vs {want} (SE {se})"
+                );
+            }
         }
+        // The step size is large enough that the trajectory points are weighted unequally.
+        assert!(infos.iter().any(|i| i.accept_prob < 0.9));
     }
-    // The step size is large enough that the trajectory points are weighted unequally.
-    assert!(infos.iter().any(|i| i.accept_prob < 0.9));
 }
 
 /// The depth cap: at most 2^max_depth − 1 leapfrog steps, one gradient evaluation each (Hoffman &
