@@ -223,6 +223,11 @@ fn hmc_reproduces_the_banana() {
 }
 
 #[test]
+fn nuts_reproduces_the_banana() {
+    check_banana(KernelKind::Nuts, None, 4000, "nuts-banana");
+}
+
+#[test]
 fn laplace_mh_t_reproduces_the_banana() {
     check_banana(KernelKind::LaplaceMh, Some(3.0), 10000, "lmh-banana");
 }
