@@ -216,8 +216,10 @@ mod tests {
         let m = Metric::low_rank(&d, q.as_slice().to_vec(), lambda.to_vec());
         let sd = DMatrix::from_diagonal(&DVector::from_iterator(n, d.iter().map(|v| v.sqrt())));
         let core = DMatrix::identity(n, n)
-            + &q * DMatrix::from_diagonal(&DVector::from_iterator(2, lambda.iter().map(|l| l - 1.0)))
-                * q.transpose();
+            + &q * DMatrix::from_diagonal(&DVector::from_iterator(
+                2,
+                lambda.iter().map(|l| l - 1.0),
+            )) * q.transpose();
         (m, &sd * core * &sd)
     }
 

@@ -35,8 +35,8 @@
 //! Everything here runs between segments, on one thread, in chain order, so the same seed gives the
 //! same bits for any number of threads; the plan is saved in the checkpoint.
 
-use super::pooled::{change, estimate};
 use super::metric::Metric;
+use super::pooled::{change, estimate};
 
 /// Largest relative change of the pooled step size between two windows for the warm-up to settle.
 pub const SETTLED_STEP: f64 = 0.2;
@@ -261,7 +261,9 @@ mod tests {
     #[test]
     fn a_settled_warmup_ends_after_the_final_stretch() {
         let mut p = WarmupPlan::new(1000, 1);
-        let draws: Vec<Vec<f64>> = (0..200).map(|i| vec![((i % 20) as f64 - 9.5) / 3.0]).collect();
+        let draws: Vec<Vec<f64>> = (0..200)
+            .map(|i| vec![((i % 20) as f64 - 9.5) / 3.0])
+            .collect();
         let refs: Vec<&[Vec<f64>]> = vec![&draws, &draws];
         p.close_window(125, &refs, &[0.5, 0.5]);
         assert_eq!(p.end, 1000);
@@ -277,7 +279,9 @@ mod tests {
     #[test]
     fn a_moving_metric_keeps_the_warmup_going() {
         let mut p = WarmupPlan::new(1000, 1);
-        let narrow: Vec<Vec<f64>> = (0..400).map(|i| vec![((i % 20) as f64 - 9.5) / 9.0]).collect();
+        let narrow: Vec<Vec<f64>> = (0..400)
+            .map(|i| vec![((i % 20) as f64 - 9.5) / 9.0])
+            .collect();
         let wide: Vec<Vec<f64>> = (0..400).map(|i| vec![(i % 20) as f64 - 9.5]).collect();
         p.close_window(125, &[&narrow], &[0.5]);
         p.close_window(225, &[&wide], &[0.5]);
@@ -291,13 +295,18 @@ mod tests {
         // 0.5·(1…20 mod 20) is 33.25/4·…, any spread well below the gap will do), B/m = 12.5, so the
         // potential scale reduction is far above 1.1.
         let mut p = WarmupPlan::new(1000, 1);
-        let a: Vec<Vec<f64>> = (0..100).map(|i| vec![((i % 7) as f64 - 3.0) / 2.0]).collect();
+        let a: Vec<Vec<f64>> = (0..100)
+            .map(|i| vec![((i % 7) as f64 - 3.0) / 2.0])
+            .collect();
         let b: Vec<Vec<f64>> = a.iter().map(|x| vec![x[0] + 5.0]).collect();
         p.close_window(125, &[&a, &b], &[0.5, 0.5]);
         p.close_window(225, &[&a, &b], &[0.5, 0.5]);
         assert!(p.history[1].rhat_max > 2.0, "{}", p.history[1].rhat_max);
         assert_eq!((p.settled, p.end), (None, 1000));
-        assert!(p.metric.is_unit(), "a window of disagreeing chains leaves the metric alone");
+        assert!(
+            p.metric.is_unit(),
+            "a window of disagreeing chains leaves the metric alone"
+        );
         // The same draws in both chains agree exactly (R = sqrt((m−1)/m) < 1, reported as 1).
         let mut q = WarmupPlan::new(1000, 1);
         q.close_window(125, &[&a, &a], &[0.5, 0.5]);

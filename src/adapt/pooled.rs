@@ -58,11 +58,12 @@ pub fn estimate(chains: &[&[Vec<f64>]], n: usize) -> Option<Estimate> {
         for x in draws.iter() {
             mean.iter_mut().zip(x).for_each(|(m, v)| *m += v / k);
         }
-        centred.extend(
-            draws
-                .iter()
-                .map(|x| x.iter().zip(&mean).map(|(v, m)| v - m).collect::<Vec<f64>>()),
-        );
+        centred.extend(draws.iter().map(|x| {
+            x.iter()
+                .zip(&mean)
+                .map(|(v, m)| v - m)
+                .collect::<Vec<f64>>()
+        }));
     }
     let (metric, shrinkage) = if n <= DENSE_MAX {
         dense(&centred, n)
@@ -118,11 +119,7 @@ fn dense(x: &[Vec<f64>], n: usize) -> (Metric, f64) {
         .iter()
         .map(|l| l.clamp(1.0 / BOUND, BOUND))
         .collect();
-    let metric = Metric::low_rank(
-        &vec![1.0; n],
-        eig.eigenvectors.as_slice().to_vec(),
-        lambda,
-    );
+    let metric = Metric::low_rank(&vec![1.0; n], eig.eigenvectors.as_slice().to_vec(), lambda);
     (metric, rho)
 }
 
@@ -191,7 +188,10 @@ mod tests {
         assert!(e.shrinkage < 0.01, "ρ = {}", e.shrinkage);
         let s = e.metric.mul(&[1.0, 0.0]);
         // Closed form C e_1 = (4, 1.2), within the sampling error of 20 000 draws.
-        assert!((s[0] - 4.0).abs() < 0.15 && (s[1] - 1.2).abs() < 0.05, "{s:?}");
+        assert!(
+            (s[0] - 4.0).abs() < 0.15 && (s[1] - 1.2).abs() < 0.05,
+            "{s:?}"
+        );
     }
 
     #[test]

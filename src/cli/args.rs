@@ -17,10 +17,9 @@ use crate::optimize::MapConfig;
 use crate::output::progress::LogFormat;
 use crate::pipeline::MapRunConfig;
 use crate::precond::LaplaceOptions;
-use crate::sampler::config::MAX_CHAINS;
-use crate::sampler::{
-    HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig,
-};
+use crate::sampler::config::{NutsSettings, MAX_CHAINS};
+use crate::sampler::nuts::MAX_TREE_DEPTH;
+use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 
 /// Posterior uncertainty for strong-constraint 4D-Var: gradient check, L-BFGS analysis, Hessian at the
 /// analysis, and preconditioned MCMC ensembles with convergence diagnostics.
@@ -359,13 +358,19 @@ pub struct ChainArgs {
           value_parser = clap::value_parser!(u64).range(1..))]
     pub checkpoint_every: u64,
     /// Target acceptance of the step-size adaptation, strictly between 0 and 1 (default: 0.574 for
-    /// MALA, 0.651 for HMC).
+    /// MALA, 0.651 for HMC, 0.8 for NUTS).
     #[arg(long, allow_negative_numbers = true, value_parser = parse::open_unit)]
     pub target_accept: Option<f64>,
     /// HMC integration time in whitened units (above 0, at most 1e6).
     #[arg(long, default_value_t = SampleConfig::default().hmc.time, allow_negative_numbers = true,
           value_parser = parse::integration_time)]
     pub hmc_time: f64,
+    /// NUTS: cap on the doublings of the trajectory per iteration, 1 to 20 (at most 2^depth − 1
+    /// leapfrog steps, each a model and adjoint run).
+    #[arg(long, default_value_t = SampleConfig::default().nuts.max_depth,
+          allow_negative_numbers = true,
+          value_parser = clap::value_parser!(u32).range(1..=i64::from(MAX_TREE_DEPTH)))]
+    pub nuts_max_depth: u32,
     /// Laplace-MH: degrees of freedom of a Student-t proposal, above 0 (default: the Laplace
     /// Gaussian).
     #[arg(long, allow_negative_numbers = true, value_parser = parse::positive)]
@@ -403,6 +408,9 @@ impl ChainArgs {
                 ..Default::default()
             },
             independence: IndependenceSettings { t_dof: self.t_dof },
+            nuts: NutsSettings {
+                max_depth: self.nuts_max_depth,
+            },
             adapt_metric: self.adapt_metric,
             learn_metric: Some(self.learn_metric),
             ..Default::default()

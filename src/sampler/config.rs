@@ -3,6 +3,7 @@
 use super::hmc::Hmc;
 use super::laplace_mh::LaplaceMh;
 use super::mala::Mala;
+use super::nuts::{Nuts, MAX_TREE_DEPTH};
 use super::Kernel;
 use crate::error::{Error, Result};
 
@@ -29,6 +30,8 @@ pub enum KernelKind {
     Mala,
     /// Independence Metropolis–Hastings with the Laplace Gaussian (or a Student-t) as proposal.
     LaplaceMh,
+    /// The No-U-Turn sampler with multinomial sampling of the trajectory.
+    Nuts,
 }
 
 impl KernelKind {
@@ -38,6 +41,7 @@ impl KernelKind {
             KernelKind::Mala => "mala",
             KernelKind::Hmc => "hmc",
             KernelKind::LaplaceMh => "laplace-mh",
+            KernelKind::Nuts => "nuts",
         }
     }
 }
@@ -62,7 +66,15 @@ impl std::str::FromStr for KernelKind {
 
 /// How the warm-up of the gradient kernels learns the metric.
 #[derive(
-    Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
 )]
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
@@ -113,6 +125,21 @@ impl Default for HmcSettings {
     }
 }
 
+/// Settings of the NUTS kernel.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[serde(default)]
+pub struct NutsSettings {
+    /// Cap on the doublings of the trajectory per iteration, 1 to 20 (default 10: at most
+    /// 2^10 − 1 = 1023 leapfrog steps).
+    pub max_depth: u32,
+}
+
+impl Default for NutsSettings {
+    fn default() -> Self {
+        NutsSettings { max_depth: 10 }
+    }
+}
+
 /// Settings of the independence (Laplace-MH) kernel.
 #[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(default)]
@@ -141,12 +168,14 @@ pub struct SampleConfig {
     /// Write a checkpoint every this many iterations (default 100).
     pub checkpoint_every: u64,
     /// Target mean acceptance of the step-size adaptation; `None`: the kernel's default (MALA 0.574,
-    /// HMC 0.651).
+    /// HMC 0.651, NUTS 0.8).
     pub target_accept: Option<f64>,
     /// HMC settings.
     pub hmc: HmcSettings,
     /// Independence-sampler settings.
     pub independence: IndependenceSettings,
+    /// NUTS settings.
+    pub nuts: NutsSettings,
     /// Chains start at u = init_scale · z, z ~ N(0, I): a draw from the Laplace approximation with its
     /// spread widened by this factor (default 2, so over-dispersed as Gelman & Rubin 1992 recommend).
     pub init_scale: f64,
@@ -174,6 +203,7 @@ impl Default for SampleConfig {
             target_accept: None,
             hmc: HmcSettings::default(),
             independence: IndependenceSettings::default(),
+            nuts: NutsSettings::default(),
             init_scale: 2.0,
             initial_step_size: None,
             adapt_metric: false,
@@ -232,6 +262,13 @@ impl SampleConfig {
         if self.hmc.max_steps == 0 {
             return bad("the HMC cap on leapfrog steps must be at least 1".into());
         }
+        if !(1..=MAX_TREE_DEPTH).contains(&self.nuts.max_depth) {
+            return bad(format!(
+                "NUTS maximum tree depth {} must lie between 1 and {MAX_TREE_DEPTH} \
+                 (option --nuts-max-depth)",
+                self.nuts.max_depth
+            ));
+        }
         if let Some(nu) = self.independence.t_dof {
             if !(nu.is_finite() && nu > 0.0) {
                 return bad(format!(
@@ -279,6 +316,7 @@ impl SampleConfig {
             KernelKind::Mala => Box::new(Mala),
             KernelKind::Hmc => Box::new(Hmc::new(self.hmc.time, self.hmc.max_steps)),
             KernelKind::LaplaceMh => Box::new(LaplaceMh::new(self.independence.t_dof)?),
+            KernelKind::Nuts => Box::new(Nuts::new(self.nuts.max_depth)?),
         })
     }
 }
@@ -304,7 +342,20 @@ mod tests {
         .validate();
         assert!(e.unwrap_err().to_string().contains("target acceptance"));
         use clap::ValueEnum;
-        assert!(KernelKind::from_str("nuts", false).is_err());
+        assert!(KernelKind::from_str("nut", false).is_err());
+        assert_eq!(
+            KernelKind::from_str("nuts", false).unwrap(),
+            KernelKind::Nuts
+        );
+        for depth in [0, 21] {
+            let e = SampleConfig {
+                nuts: NutsSettings { max_depth: depth },
+                ..Default::default()
+            }
+            .validate()
+            .unwrap_err();
+            assert!(e.to_string().contains("--nuts-max-depth"), "{e}");
+        }
         assert_eq!(
             KernelKind::from_str("laplace-mh", false).unwrap(),
             KernelKind::LaplaceMh

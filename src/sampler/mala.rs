@@ -21,8 +21,8 @@ use super::{
     mh_decide, standard_normal, ChainRng, ChainState, Kernel, KernelSpec, Metric, StepInfo,
     StepSizeSpec, Target,
 };
-use crate::util::vector::dot;
 use crate::error::Result;
+use crate::util::vector::dot;
 
 /// MALA; the step size is passed to each step.
 #[derive(Debug, Clone, Copy, Default)]
@@ -33,7 +33,9 @@ pub struct Mala;
 fn log_q(to: &[f64], from: &ChainState, eps: f64, s: &Metric) -> f64 {
     let h = 0.5 * eps * eps;
     let sg = s.mul(&from.grad);
-    let r: Vec<f64> = (0..to.len()).map(|i| to[i] - from.u[i] - h * sg[i]).collect();
+    let r: Vec<f64> = (0..to.len())
+        .map(|i| to[i] - from.u[i] - h * sg[i])
+        .collect();
     let w = s.solve_sqrt(&r);
     -dot(&w, &w) / (2.0 * eps * eps)
 }

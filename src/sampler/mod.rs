@@ -45,17 +45,18 @@ pub mod importance;
 pub mod integrator;
 pub mod laplace_mh;
 pub mod mala;
+pub mod nuts;
 pub mod state;
 pub mod target;
 pub mod welford;
 
+pub use crate::adapt::Metric;
 pub use chain::{run, ChainSummary, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
 pub use config::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use ensemble::{ChainDraws, Ensemble, WeightedDraws};
 pub use target::{CountedProblem, Target};
-pub use crate::adapt::Metric;
 pub use welford::Welford;
 
 use rand::RngExt;

@@ -30,11 +30,12 @@ fn every_kernel_reproduces_the_closed_form_posterior_within_4_mcse() {
     // Closed form: (B^-1 + G^T R^-1 G)^-1 and its mean (Gaussian conditioning, textbook). Monte Carlo
     // standard errors: MCSE of the mean, and of the variance 2 sd MCSE(sd), from the ESS (Vehtari,
     // Gelman, Simpson, Carpenter & Burkner 2021).
-    let cases: [&[&str]; 4] = [
+    let cases: [&[&str]; 5] = [
         &["--kernel", "mala", "--draws", "3000"],
         &["--kernel", "hmc"],
         &["--kernel", "laplace-mh"],
         &["--kernel", "hmc", "--method", "low-rank"],
+        &["--kernel", "nuts"],
     ];
     for extra in cases {
         let d = temp_dir(&format!("lg-{}", extra.join("-")));
@@ -301,12 +302,28 @@ fn bad_sampling_input_gives_clear_errors() {
             "--problem",
             "linear-gaussian",
             "--kernel",
-            "nuts",
+            "gibbs",
             "--out",
             o_s,
         ],
-        "invalid value 'nuts' for '--kernel",
+        "invalid value 'gibbs' for '--kernel",
     );
+    for depth in ["0", "21", "-1"] {
+        check(
+            &[
+                "sample",
+                "--problem",
+                "linear-gaussian",
+                "--kernel",
+                "nuts",
+                "--nuts-max-depth",
+                depth,
+                "--out",
+                o_s,
+            ],
+            &format!("invalid value '{depth}' for '--nuts-max-depth"),
+        );
+    }
     check(
         &[
             "sample",

@@ -101,7 +101,12 @@ fn same_numbers(a: &SampleResult, b: &SampleResult) {
 
 #[test]
 fn same_seed_same_output_with_one_or_two_threads() {
-    for kernel in [KernelKind::Mala, KernelKind::Hmc, KernelKind::LaplaceMh] {
+    for kernel in [
+        KernelKind::Mala,
+        KernelKind::Hmc,
+        KernelKind::LaplaceMh,
+        KernelKind::Nuts,
+    ] {
         let mut out = Vec::new();
         for threads in [1, 2] {
             let dir = temp_dir(&format!("threads-{}-{threads}", kernel.name()));

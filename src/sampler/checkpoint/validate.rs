@@ -100,7 +100,11 @@ fn check_chain(c: usize, ch: &ChainCheckpoint, e: &Expect) -> Result<(), String>
             ch.step_size
         ));
     }
-    if ch.window.iter().any(|u| u.len() != e.dim || !u.iter().all(|v| v.is_finite())) {
+    if ch
+        .window
+        .iter()
+        .any(|u| u.len() != e.dim || !u.iter().all(|v| v.is_finite()))
+    {
         return Err("window: a position has the wrong length or a non-finite entry".into());
     }
     ch.warmup
