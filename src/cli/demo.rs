@@ -16,7 +16,7 @@ pub fn demo(out: &Path, progress: Progress) -> Result<ExitCode> {
     // The demo samples with the default settings.
     let s = SampleConfig::default();
     let chains = ChainProgress::new(s.chains, s.warmup, s.iterations());
-    let advance = |chain: usize, done: u64, _total: u64| chains.advance(chain, done);
+    let advance = |chain: usize, done: u64, total: u64| chains.advance(chain, done, total);
     let watch = Watch {
         label: "varpost demo",
         stage: "gradient test, analysis, Hessian, Laplace check",

@@ -87,9 +87,9 @@ fn run(
     let interrupt = Interrupt::from_signals()?;
     let s = &cfg.sampler;
     let chains = ChainProgress::new(s.chains, s.warmup, s.iterations());
-    let advance = |chain: usize, done: u64, _total: u64| {
+    let advance = |chain: usize, done: u64, total: u64| {
         Fault::in_sampling(fault);
-        chains.advance(chain, done);
+        chains.advance(chain, done, total);
     };
     let runs = || loaded.problem.counts().model_runs();
     let watch = Watch {

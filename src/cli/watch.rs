@@ -26,8 +26,10 @@ const FAILED: u8 = 2;
 #[derive(Debug)]
 pub struct ChainProgress {
     done: Vec<AtomicU64>,
-    warmup: u64,
-    per_chain: u64,
+    /// Iterations per chain: the warm-up ends early once it has settled, so the sampler tells it.
+    per_chain: AtomicU64,
+    /// Sampling iterations per chain (draws × thin); the rest of `per_chain` is warm-up.
+    sampling: u64,
     started: AtomicBool,
 }
 
@@ -36,23 +38,25 @@ impl ChainProgress {
     pub fn new(chains: usize, warmup: u64, per_chain: u64) -> Self {
         ChainProgress {
             done: (0..chains).map(|_| AtomicU64::new(0)).collect(),
-            warmup,
-            per_chain,
+            per_chain: AtomicU64::new(per_chain),
+            sampling: per_chain.saturating_sub(warmup),
             started: AtomicBool::new(false),
         }
     }
 
-    /// Chain `chain` has done `done` iterations (warm-up included).
-    pub fn advance(&self, chain: usize, done: u64) {
+    /// Chain `chain` has done `done` of its `total` iterations (warm-up included).
+    pub fn advance(&self, chain: usize, done: u64, total: u64) {
         if let Some(d) = self.done.get(chain) {
             d.store(done, Ordering::Relaxed);
         }
+        self.per_chain.store(total, Ordering::Relaxed);
         self.started.store(true, Ordering::Relaxed);
     }
 
     fn iterations(&self) -> (u64, u64) {
         let done = self.done.iter().map(|d| d.load(Ordering::Relaxed)).sum();
-        (done, self.per_chain * self.done.len() as u64)
+        let per_chain = self.per_chain.load(Ordering::Relaxed);
+        (done, per_chain * self.done.len() as u64)
     }
 
     /// The chains' stage, once they have started.
@@ -61,7 +65,11 @@ impl ChainProgress {
             return None;
         }
         let slowest = self.done.iter().map(|d| d.load(Ordering::Relaxed)).min();
-        Some(if slowest.unwrap_or(0) < self.warmup {
+        let warmup = self
+            .per_chain
+            .load(Ordering::Relaxed)
+            .saturating_sub(self.sampling);
+        Some(if slowest.unwrap_or(0) < warmup {
             "warm-up"
         } else {
             "sampling"
@@ -237,7 +245,7 @@ mod tests {
             chains: Some(&chains),
         };
         let e = run_watched::<()>(Progress::hidden(), &watch, || {
-            chains.advance(0, 1);
+            chains.advance(0, 1, 1);
             panic!("in the call")
         })
         .unwrap_err();
