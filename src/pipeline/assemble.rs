@@ -4,7 +4,9 @@ use std::path::Path;
 
 use super::load::Loaded;
 use super::stages::{Analysis, LaplaceCheck};
-use crate::diagnostics::{ComponentStats, Status, Verdict};
+use crate::diagnostics::{
+    AnalysisReading, ChainDivergences, ComponentStats, GradientTest, SpreadFlag, Status, Verdict,
+};
 use crate::error::Result;
 use crate::output::summary::{
     ChainReport, CheckSummary, DiagnosticsSummary, LaplaceCheckSummary, LaplaceSummary, MapSummary,
@@ -75,10 +77,11 @@ pub fn summary(
         let lap_var = results.laplace.as_ref().map(|l| l.variance.as_slice());
         laplace_check_summary(c, sampled_var, lap_var)
     });
+    let names = loaded.names();
     s.diagnostics = results
         .diagnosis
         .as_ref()
-        .map(|d| diagnostics_summary(d, results.laplace_check.as_ref()));
+        .map(|d| diagnostics_summary(d, results.laplace_check.as_ref(), &names));
     s.evaluations = evaluations;
     s.evaluations_by_stage = by_stage.clone();
     s
@@ -111,7 +114,8 @@ pub fn check_summary(r: &GradientReport) -> CheckSummary {
     }
 }
 
-fn map_summary(a: &Analysis) -> MapSummary {
+/// The analysis's record.
+pub fn map_summary(a: &Analysis) -> MapSummary {
     let map = &a.map;
     MapSummary {
         cost: map.cost,
@@ -189,6 +193,7 @@ fn laplace_check_summary(
         failed: c.failed,
         khat: ic.khat,
         khat_threshold: ic.khat_threshold,
+        khat_note: ic.khat_note.clone(),
         kish_ess: ic.kish_ess,
         kish_fraction: ic.kish_ess / c.draws as f64,
         variance_ratio: match (sampled_variance, laplace_variance) {
@@ -218,8 +223,19 @@ fn chain_reports(smp: &Sampled, d: Option<&Diagnosis>) -> Vec<ChainReport> {
         .collect()
 }
 
-fn diagnostics_summary(d: &Diagnosis, check: Option<&LaplaceCheck>) -> DiagnosticsSummary {
+fn diagnostics_summary(
+    d: &Diagnosis,
+    check: Option<&LaplaceCheck>,
+    names: &[String],
+) -> DiagnosticsSummary {
     let stats = &d.stats;
+    let v = &d.verdict;
+    let named = |flag| {
+        v.spread_components(flag)
+            .into_iter()
+            .map(|i| names.get(i).cloned().unwrap_or_else(|| format!("x{i}")))
+            .collect()
+    };
     DiagnosticsSummary {
         rhat_max: stats
             .iter()
@@ -234,9 +250,18 @@ fn diagnostics_summary(d: &Diagnosis, check: Option<&LaplaceCheck>) -> Diagnosti
             .map(|s| s.ess_tail)
             .fold(f64::INFINITY, nan_min),
         khat: check.map(|c| c.check.khat),
-        converged: d.verdict.status == Status::Converged,
-        laplace_adequate: d.verdict.laplace_adequate,
-        verdict: d.verdict.text(),
+        converged: v.status == Status::Converged,
+        status: Some(v.status),
+        reasons: v.reasons.clone(),
+        exit_code: Some(v.exit_code().code()),
+        laplace_adequate: v.laplace_adequate,
+        khat_threshold: v.khat_threshold,
+        divergent_fraction: v.divergent_fraction,
+        sd_ratio: v.spread.as_ref().map_or(Vec::new(), |s| s.ratio.clone()),
+        sd_ratio_mcse: v.spread.as_ref().map_or(Vec::new(), |s| s.ratio_mcse.clone()),
+        laplace_understates: named(SpreadFlag::Understated),
+        laplace_overstates: named(SpreadFlag::Overstated),
+        verdict: v.text(),
     }
 }
 
@@ -273,4 +298,44 @@ fn posterior_summary(r: &SampleResult, stats: &[ComponentStats]) -> PosteriorSum
         mcse_q05: col(|s| s.mcse_q05),
         mcse_q95: col(|s| s.mcse_q95),
     }
+}
+
+/// The gradient test as the verdict reads it: its result where it ran, skipped where the run skipped
+/// it; `None` when neither is known.
+pub fn gradient_reading(passed: Option<bool>, skipped: bool) -> Option<GradientTest> {
+    match (passed, skipped) {
+        (Some(true), _) => Some(GradientTest::Passed),
+        (Some(false), _) => Some(GradientTest::Failed),
+        (None, true) => Some(GradientTest::Skipped),
+        (None, false) => None,
+    }
+}
+
+/// The analysis as the verdict reads it.
+pub fn analysis_reading(m: &MapSummary) -> AnalysisReading {
+    AnalysisReading {
+        converged: m.converged,
+        reason: m.reason.clone(),
+        iterations: m.iterations,
+    }
+}
+
+/// Divergences and sampling transitions (kept draws × `thin`) per chain, from (divergences, kept
+/// draws) of each chain.
+pub fn chain_divergences(
+    chains: impl IntoIterator<Item = (u64, u64)>,
+    thin: u64,
+) -> Vec<ChainDivergences> {
+    chains
+        .into_iter()
+        .map(|(divergences, draws)| ChainDivergences {
+            divergences,
+            transitions: draws.saturating_mul(thin.max(1)),
+        })
+        .collect()
+}
+
+/// Standard deviations of the Laplace approximation per component.
+pub fn laplace_sd(l: &LaplaceSummary) -> Vec<f64> {
+    l.variance.iter().map(|v| v.sqrt()).collect()
 }
