@@ -57,13 +57,13 @@ pub use laplace_check::{
 pub use mcse::{mcse_mean, mcse_quantile, mcse_sd};
 pub use rhat::rhat;
 pub use special::inverse_normal_cdf;
-pub use summary::{component_stats, ComponentStats};
 pub use spread::{
     compare_spread, spread_flag, SpreadComparison, SpreadFlag, SPREAD_MC_ERRORS, SPREAD_TOLERANCE,
 };
+pub use summary::{component_stats, ComponentStats};
 pub use verdict::{
     khat_text, AnalysisReading, ChainDivergences, Check, GradientTest, KhatReading, LaplaceFacts,
-    Reason, RunFacts, RunProgress, Status, Verdict, CONDITIONAL_CAUTION, DIVERGENCE_LIMIT, ESS_LIMIT,
-    KHAT_LIMIT, MAX_NAMED, MIN_CHAINS, RHAT_LIMIT,
+    Reason, RunFacts, RunProgress, Status, Verdict, CONDITIONAL_CAUTION, DIVERGENCE_LIMIT,
+    ESS_LIMIT, KHAT_LIMIT, MAX_NAMED, MIN_CHAINS, RHAT_LIMIT,
 };
 pub use weighted::weighted_component_stats;

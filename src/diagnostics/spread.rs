@@ -144,7 +144,12 @@ mod tests {
 
     #[test]
     fn components_are_compared_one_by_one() {
-        let s = [stats(2.0, 0.02), stats(1.0, 0.01), stats(0.5, 0.01), stats(0.0, f64::NAN)];
+        let s = [
+            stats(2.0, 0.02),
+            stats(1.0, 0.01),
+            stats(0.5, 0.01),
+            stats(0.0, f64::NAN),
+        ];
         let c = compare_spread(&s, &[1.0, 1.0, 1.0, 1.0]).unwrap();
         assert_eq!(
             c.flags,

@@ -270,7 +270,9 @@ impl Verdict {
             f.reason(Reason::PartialRun, partial_sentence(p));
         }
         match facts.gradient {
-            Some(GradientTest::Failed) => f.reason(Reason::GradientTestFailed, GRADIENT_FAILED.into()),
+            Some(GradientTest::Failed) => {
+                f.reason(Reason::GradientTestFailed, GRADIENT_FAILED.into())
+            }
             Some(GradientTest::Skipped) => {
                 f.reason(Reason::GradientTestSkipped, GRADIENT_SKIPPED.into())
             }
@@ -283,9 +285,12 @@ impl Verdict {
         let divergent_fraction = judge_divergences(&mut f, &facts.divergences);
         let (mut spread, mut laplace_adequate, mut khat_limit) = (None, None, None);
         if let Some(l) = facts.laplace {
-            spread = chains_ok.then(|| compare_spread(stats, l.sd).ok()).flatten();
+            spread = chains_ok
+                .then(|| compare_spread(stats, l.sd).ok())
+                .flatten();
             khat_limit = l.khat.map(|r| r.limit());
-            laplace_adequate = judge_laplace(&mut f, l.khat, spread.as_ref(), facts.names, chains_ok);
+            laplace_adequate =
+                judge_laplace(&mut f, l.khat, spread.as_ref(), facts.names, chains_ok);
         }
         let status = status_of(&f.reasons);
         let mut sentences = vec![headline(status, &f.reasons)];
@@ -323,7 +328,9 @@ impl Verdict {
     /// Indices of the components whose spread the inverse Hessian understates (`Understated`) or
     /// overstates (`Overstated`); empty when the spread was not compared.
     pub fn spread_components(&self, flag: SpreadFlag) -> Vec<usize> {
-        self.spread.as_ref().map_or(Vec::new(), |s| s.with_flag(flag))
+        self.spread
+            .as_ref()
+            .map_or(Vec::new(), |s| s.with_flag(flag))
     }
 
     /// All sentences as one paragraph.
@@ -611,13 +618,19 @@ fn judge_laplace(
     };
     text.push(
         match adequate {
-            Some(true) => "The Laplace covariance, the inverse Hessian, is a usable description of \
-                the posterior.",
-            Some(false) => "The inverse Hessian is not a trustworthy posterior covariance here; rely \
-                on the sampled ensemble instead.",
-            None => "Whether the inverse Hessian is a usable description of the posterior is not \
-                established: that needs both a k-hat below its threshold and standard deviations \
-                agreeing with those of converged chains.",
+            Some(true) => {
+                "The Laplace covariance, the inverse Hessian, is a usable description of \
+                the posterior."
+            }
+            Some(false) => {
+                "The inverse Hessian is not a trustworthy posterior covariance here; rely \
+                on the sampled ensemble instead."
+            }
+            None => {
+                "The inverse Hessian is not established as a usable description of the \
+                posterior: that needs both a k-hat below its threshold and standard deviations \
+                agreeing with those of converged chains."
+            }
         }
         .to_string(),
     );
@@ -644,7 +657,10 @@ fn khat_part(f: &mut Findings, khat: Option<KhatReading>) -> (Option<bool>, Vec<
         let why = if r.draws < min {
             format!("from {} draws (at least {min} are needed, and a few hundred for a useful estimate)", r.draws)
         } else {
-            format!("from these {} draws: too few distinct large importance weights for the Pareto fit", r.draws)
+            format!(
+                "from these {} draws: too few distinct large importance weights for the Pareto fit",
+                r.draws
+            )
         };
         let s = format!(
             "The importance check of the Laplace (Gaussian) approximation could not judge it: Pareto \
@@ -669,8 +685,17 @@ fn khat_part(f: &mut Findings, khat: Option<KhatReading>) -> (Option<bool>, Vec<
 
 /// The spread comparison in words, naming the components; whether every component agrees (`None`:
 /// none disagrees but some could not be compared).
-fn spread_part(s: &SpreadComparison, names: Option<&[String]>, text: &mut Vec<String>) -> Option<bool> {
-    let name = |i: usize| names.and_then(|n| n.get(i)).cloned().unwrap_or_else(|| format!("x{i}"));
+fn spread_part(
+    s: &SpreadComparison,
+    names: Option<&[String]>,
+    text: &mut Vec<String>,
+) -> Option<bool> {
+    let name = |i: usize| {
+        names
+            .and_then(|n| n.get(i))
+            .cloned()
+            .unwrap_or_else(|| format!("x{i}"))
+    };
     let tol = 100.0 * SPREAD_TOLERANCE;
     let listed = |idx: &[usize]| {
         let items: Vec<String> = idx
@@ -708,12 +733,415 @@ fn spread_part(s: &SpreadComparison, names: Option<&[String]>, text: &mut Vec<St
         let items: Vec<String> = not_compared.iter().map(|&i| name(i)).collect();
         text.push(format!(
             "{} component{} could not be compared (constant draws or a zero Laplace variance): {}.",
-            not_compared.len(), plural(not_compared.len()), named_list(&items)
+            not_compared.len(),
+            plural(not_compared.len()),
+            named_list(&items)
         ));
     }
     if under.is_empty() && over.is_empty() {
         None
     } else {
         Some(false)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Limits R-hat < 1.01, ESS >= 400, >= 4 chains: Vehtari et al. 2021, Bayesian Analysis 16(2);
+    // k-hat below min(1 - 1/log10 S, 0.7): Vehtari et al. 2024, JMLR 25, section 3. The divergence
+    // fraction 0.1% and the spread rule (10% beyond 2 MCSE) are this crate's (common practice, no
+    // source).
+
+    /// Components with the given posterior sds (MCSE of the sd 0.02) from well-mixed chains.
+    fn comps(sds: &[f64]) -> Vec<ComponentStats> {
+        sds.iter()
+            .map(|&sd| ComponentStats {
+                mean: 0.0,
+                sd,
+                rhat: 1.002,
+                ess_bulk: 900.0,
+                ess_tail: 800.0,
+                mcse_mean: 0.03,
+                mcse_sd: 0.02,
+                q05: -1.6 * sd,
+                q95: 1.6 * sd,
+                mcse_q05: 0.05,
+                mcse_q95: 0.05,
+            })
+            .collect()
+    }
+
+    fn khat(k: f64, draws: usize) -> Option<KhatReading> {
+        Some(KhatReading { khat: k, draws })
+    }
+
+    /// A run where everything passed: gradient test, analysis, 2000 Laplace draws with k-hat 0.3, no
+    /// divergences.
+    fn good_facts(sd: &[f64]) -> RunFacts<'_> {
+        RunFacts {
+            gradient: Some(GradientTest::Passed),
+            analysis: Some(AnalysisReading {
+                converged: true,
+                reason: "gradient norm reduced by 1.0e-6".into(),
+                iterations: 12,
+            }),
+            laplace: Some(LaplaceFacts {
+                khat: khat(0.3, 2000),
+                sd,
+            }),
+            names: None,
+            divergences: vec![
+                ChainDivergences {
+                    divergences: 0,
+                    transitions: 1000,
+                };
+                4
+            ],
+            partial: None,
+        }
+    }
+
+    #[test]
+    fn everything_passed_is_green() {
+        let sd = [1.0, 2.0];
+        let v = Verdict::judge(&comps(&[1.01, 1.98]), 4, &good_facts(&sd));
+        assert_eq!(v.status, Status::Converged, "{}", v.text());
+        assert!(v.reasons.is_empty());
+        assert_eq!(v.exit_code(), ExitCode::Success);
+        assert_eq!(v.laplace_adequate, Some(true));
+        assert!(v.checks.iter().all(|c| c.passed));
+        let text = v.text();
+        assert!(
+            text.starts_with("Verdict: converged. Every check passed"),
+            "{text}"
+        );
+        assert!(
+            text.contains("is a usable description of the posterior"),
+            "{text}"
+        );
+        assert!(text.ends_with(CONDITIONAL_CAUTION));
+        let json = serde_json::to_value(&v).unwrap();
+        assert_eq!(json["status"], "converged");
+        assert_eq!(json["checks"][0]["name"], "rhat");
+    }
+
+    #[test]
+    fn variance_ratios_of_2_4_and_1_5_with_khat_above_its_threshold_are_not_adequate() {
+        // The reported case: k-hat 0.63 from the default 200 draws, whose threshold is
+        // 1 - 1/log10(200) = 0.565 (printed 0.57), and sampled/Laplace variance ratios 2.4 and 1.5
+        // (sd ratios 1.55 and 1.22, far outside [0.9, 1.1] with an MCSE of 0.02).
+        let sd = [1.0, 1.0, 1.0];
+        let names = ["u".to_string(), "v".to_string(), "w".to_string()];
+        let mut facts = good_facts(&sd);
+        facts.laplace = Some(LaplaceFacts {
+            khat: khat(0.63, 200),
+            sd: &sd,
+        });
+        facts.names = Some(&names);
+        let stats = comps(&[2.4f64.sqrt(), 1.5f64.sqrt(), 1.0]);
+        let v = Verdict::judge(&stats, 4, &facts);
+        let text = v.text();
+        assert_eq!(v.laplace_adequate, Some(false), "{text}");
+        assert!(!text.contains("is a usable description"), "{text}");
+        assert!(
+            text.contains("not a trustworthy posterior covariance"),
+            "{text}"
+        );
+        assert_ne!(v.status, Status::Converged);
+        assert_eq!(v.reasons, vec![Reason::LaplaceInadequate]);
+        assert_eq!(v.exit_code(), ExitCode::ConvergedWithWarnings);
+        // The threshold printed is the one used, and k-hat is named as failing it.
+        assert!((v.khat_threshold.unwrap() - (1.0 - 1.0 / 200f64.log10())).abs() < 1e-15);
+        assert!(
+            text.contains("k-hat 0.63, at least the threshold 0.57 for 200 draws"),
+            "{text}"
+        );
+        let khat_check = v.checks.iter().find(|c| c.name == "khat").unwrap();
+        assert!(!khat_check.passed && khat_check.limit == v.khat_threshold.unwrap());
+        // Both components are named, the agreeing one is not.
+        assert_eq!(v.spread_components(SpreadFlag::Understated), vec![0, 1]);
+        assert!(text.contains("u (1.55 ± 0.02), v (1.22 ± 0.02)"), "{text}");
+        assert!(!text.contains("w ("), "{text}");
+    }
+
+    #[test]
+    fn adequacy_needs_both_khat_and_spread() {
+        let sd = [1.0, 1.0];
+        // k-hat passes, spreads do not.
+        let v = Verdict::judge(&comps(&[1.5, 1.0]), 4, &good_facts(&sd));
+        assert_eq!(v.laplace_adequate, Some(false));
+        assert_eq!(v.reasons, vec![Reason::LaplaceInadequate]);
+        // Spreads agree, k-hat fails (0.7 against 0.7 for 5000 draws: at the limit fails).
+        let mut f = good_facts(&sd);
+        f.laplace = Some(LaplaceFacts {
+            khat: khat(0.7, 5000),
+            sd: &sd,
+        });
+        let v = Verdict::judge(&comps(&[1.0, 1.0]), 4, &f);
+        assert_eq!(v.laplace_adequate, Some(false));
+        // Just below the threshold of 5000 draws passes.
+        f.laplace = Some(LaplaceFacts {
+            khat: khat(0.699, 5000),
+            sd: &sd,
+        });
+        assert_eq!(
+            Verdict::judge(&comps(&[1.0, 1.0]), 4, &f).laplace_adequate,
+            Some(true)
+        );
+        // An overstated spread: posterior sd 0.8 of the Laplace one.
+        let v = Verdict::judge(&comps(&[0.8, 1.0]), 4, &good_facts(&sd));
+        assert_eq!(v.spread_components(SpreadFlag::Overstated), vec![0]);
+        assert!(v.text().contains("overstates the spread of 1 component"));
+    }
+
+    #[test]
+    fn khat_is_judged_against_the_threshold_of_its_draws() {
+        // With S = 100 the threshold is 0.5: k-hat 0.55 fails there, passes with 5000 draws (0.7).
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        for (draws, adequate) in [(100, false), (5000, true)] {
+            f.laplace = Some(LaplaceFacts {
+                khat: khat(0.55, draws),
+                sd: &sd,
+            });
+            let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+            assert_eq!(v.laplace_adequate, Some(adequate), "{}", v.text());
+        }
+        assert!((khat_threshold(100) - 0.5).abs() < 1e-15);
+    }
+
+    #[test]
+    fn printed_khat_and_threshold_never_look_equal() {
+        assert_eq!(khat_text(0.63, 0.5654), ("0.63".into(), "0.57".into()));
+        assert_eq!(
+            khat_text(0.5652, 0.5654),
+            ("0.5652".into(), "0.5654".into())
+        );
+        assert_eq!(khat_text(0.566, 0.5654), ("0.566".into(), "0.565".into()));
+        assert_eq!(khat_text(f64::NAN, 0.5).0, "not estimated");
+    }
+
+    #[test]
+    fn an_unrun_or_unestimable_khat_leaves_the_laplace_approximation_unjudged() {
+        // Fewest draws for the Pareto tail fit: 21 (Vehtari et al. 2024; ArviZ 0.23 psislw).
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        f.laplace = Some(LaplaceFacts {
+            khat: khat(f64::NAN, 20),
+            sd: &sd,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.laplace_adequate, None);
+        assert_eq!(v.reasons, vec![Reason::LaplaceNotJudged]);
+        assert_eq!(v.status, Status::ConvergedWithWarnings);
+        assert_eq!(v.exit_code(), ExitCode::ConvergedWithWarnings);
+        assert!(v.checks.iter().all(|c| c.name != "khat"));
+        let text = v.text();
+        assert!(
+            text.contains("from 20 draws") && text.contains("at least 21"),
+            "{text}"
+        );
+        assert!(!text.contains("is a usable description"), "{text}");
+        f.laplace = Some(LaplaceFacts {
+            khat: None,
+            sd: &sd,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.reasons, vec![Reason::LaplaceNotJudged]);
+        assert!(v.text().contains("--laplace-draws 0"));
+        // Equal weights (k-hat -inf) pass.
+        f.laplace = Some(LaplaceFacts {
+            khat: khat(f64::NEG_INFINITY, 200),
+            sd: &sd,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.laplace_adequate, Some(true));
+        assert!(v.text().contains("weights are equal"), "{}", v.text());
+    }
+
+    #[test]
+    fn an_unconverged_analysis_is_a_warning_with_exit_code_4() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        f.analysis = Some(AnalysisReading {
+            converged: false,
+            reason: "iteration limit reached".into(),
+            iterations: 3,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::ConvergedWithWarnings);
+        assert_eq!(v.reasons, vec![Reason::AnalysisNotConverged]);
+        assert_eq!(v.exit_code(), ExitCode::AnalysisNotConverged);
+        assert!(v
+            .text()
+            .contains("did not converge (iteration limit reached after 3 iterations)"));
+    }
+
+    #[test]
+    fn gradient_test_skipped_warns_and_failed_blocks() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        f.gradient = Some(GradientTest::Skipped);
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(
+            (v.status, v.exit_code()),
+            (
+                Status::ConvergedWithWarnings,
+                ExitCode::ConvergedWithWarnings
+            )
+        );
+        assert!(v.text().contains("--skip-check"));
+        f.gradient = Some(GradientTest::Failed);
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::NotConverged);
+        assert_eq!(v.exit_code(), ExitCode::GradientWrong);
+        assert_eq!(v.reasons, vec![Reason::GradientTestFailed]);
+    }
+
+    #[test]
+    fn divergences_above_a_tenth_of_a_percent_block_use() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        // 4 of 4000 transitions: exactly 0.1%, allowed (and still reported per chain).
+        f.divergences[2].divergences = 4;
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::Converged, "{}", v.text());
+        assert!((v.divergent_fraction.unwrap() - 0.001).abs() < 1e-15);
+        assert!(v.text().contains("chain 2: 4") && v.text().contains("within the 0.1% allowed"));
+        // 5 of 4000: above.
+        f.divergences[2].divergences = 5;
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::NotConverged);
+        assert_eq!(v.reasons, vec![Reason::TooManyDivergences]);
+        assert_eq!(v.exit_code(), ExitCode::EnsembleNotUsable);
+        let text = v.text();
+        assert!(
+            text.contains("5 of 4000 sampling transitions diverged"),
+            "{text}"
+        );
+        assert!(
+            text.contains("chain 0: 0, chain 1: 0, chain 2: 5, chain 3: 0"),
+            "{text}"
+        );
+    }
+
+    #[test]
+    fn a_partial_run_says_how_far_it_got_and_is_not_green() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        f.partial = Some(RunProgress {
+            draws_per_chain: vec![300, 310, 305, 300],
+            planned: 1000,
+            model_runs: 12345,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::Partial);
+        assert_eq!(v.reasons, vec![Reason::PartialRun]);
+        assert_eq!(v.exit_code(), ExitCode::EnsembleNotUsable);
+        let text = v.text();
+        assert!(
+            text.contains("300, 310, 305, 300 of the 1000 planned draws"),
+            "{text}"
+        );
+        assert!(text.contains("12345 model runs"), "{text}");
+    }
+
+    #[test]
+    fn every_reason_is_listed_not_just_the_first() {
+        let sd = [1.0, 1.0];
+        let mut f = good_facts(&sd);
+        f.gradient = Some(GradientTest::Skipped);
+        f.analysis.as_mut().unwrap().converged = false;
+        f.divergences[0].divergences = 100;
+        f.partial = Some(RunProgress {
+            draws_per_chain: vec![50; 4],
+            planned: 1000,
+            model_runs: 10,
+        });
+        f.laplace = Some(LaplaceFacts {
+            khat: khat(0.9, 200),
+            sd: &sd,
+        });
+        let mut stats = comps(&[1.0, 1.0]);
+        stats[1].rhat = 1.05;
+        let v = Verdict::judge(&stats, 2, &f);
+        assert_eq!(
+            v.reasons,
+            vec![
+                Reason::PartialRun,
+                Reason::GradientTestSkipped,
+                Reason::AnalysisNotConverged,
+                Reason::ChainsNotConverged,
+                Reason::TooManyDivergences,
+                Reason::LaplaceInadequate,
+            ]
+        );
+        assert_eq!(v.status, Status::Partial);
+        let head = &v.sentences[0];
+        for r in &v.reasons {
+            assert!(head.contains(r.describe()), "{head}");
+        }
+        let failed: Vec<_> = v
+            .checks
+            .iter()
+            .filter(|c| !c.passed)
+            .map(|c| c.name)
+            .collect();
+        assert_eq!(failed, vec!["rhat", "chains", "divergences", "khat"]);
+        // Chains not converged: the spread is not compared.
+        assert!(v.spread.is_none());
+        assert!(v.text().contains("only once the chains have converged"));
+        assert!(v.text().contains("Only 2 chains"));
+    }
+
+    #[test]
+    fn unconverged_chains_leave_a_passing_khat_unjudged() {
+        let sd = [1.0];
+        let mut stats = comps(&[1.0]);
+        stats[0].ess_tail = 399.0;
+        let v = Verdict::judge(&stats, 4, &good_facts(&sd));
+        assert_eq!(v.status, Status::NotConverged);
+        assert_eq!(
+            v.reasons,
+            vec![Reason::ChainsNotConverged, Reason::LaplaceNotJudged]
+        );
+        assert_eq!(v.laplace_adequate, None);
+        // ESS exactly 400 passes.
+        stats[0].ess_tail = 400.0;
+        assert_eq!(
+            Verdict::judge(&stats, 4, &good_facts(&sd)).status,
+            Status::Converged
+        );
+    }
+
+    #[test]
+    fn named_components_are_capped_at_ten() {
+        let n = 15;
+        let sd = vec![1.0; n];
+        let v = Verdict::judge(&comps(&vec![2.0; n]), 4, &good_facts(&sd));
+        assert_eq!(v.spread_components(SpreadFlag::Understated).len(), n);
+        let text = v.text();
+        assert!(text.contains("of 15 components"), "{text}");
+        assert!(text.contains("x9 (2.00 ± 0.02) and 5 more"), "{text}");
+        assert!(!text.contains("x10 ("), "{text}");
+    }
+
+    #[test]
+    fn nan_fails_and_chains_alone_can_be_judged() {
+        let mut stats = comps(&[1.0]);
+        stats[0].rhat = f64::NAN;
+        let v = Verdict::judge(&stats, 4, &RunFacts::default());
+        assert_eq!(v.status, Status::NotConverged);
+        assert!(v.text().contains("all its draws are equal"));
+        assert_eq!(v.laplace_adequate, None);
+        // Facts left out are not part of the verdict.
+        let v = Verdict::judge(&comps(&[1.0]), 4, &RunFacts::default());
+        assert_eq!(v.status, Status::Converged);
+        assert_eq!(
+            Verdict::judge(&[], 4, &RunFacts::default()).status,
+            Status::NotConverged
+        );
     }
 }

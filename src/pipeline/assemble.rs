@@ -258,7 +258,10 @@ fn diagnostics_summary(
         khat_threshold: v.khat_threshold,
         divergent_fraction: v.divergent_fraction,
         sd_ratio: v.spread.as_ref().map_or(Vec::new(), |s| s.ratio.clone()),
-        sd_ratio_mcse: v.spread.as_ref().map_or(Vec::new(), |s| s.ratio_mcse.clone()),
+        sd_ratio_mcse: v
+            .spread
+            .as_ref()
+            .map_or(Vec::new(), |s| s.ratio_mcse.clone()),
         laplace_understates: named(SpreadFlag::Understated),
         laplace_overstates: named(SpreadFlag::Overstated),
         verdict: v.text(),

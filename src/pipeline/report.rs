@@ -5,9 +5,9 @@
 
 use std::path::{Path, PathBuf};
 
+use super::assemble;
 use super::diagnose::diagnose;
 use super::sample::{read_run, SampleOutcome};
-use super::assemble;
 use crate::config::RunConfig;
 use crate::diagnostics::{
     autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
@@ -138,11 +138,16 @@ fn verdict_from_disk(
         ),
         _ => {
             let flags = draws.per_draw(|r| f64::from(r.flags & FLAG_DIVERGENT != 0))?;
-            let per_chain = flags.iter().map(|c| (c.iter().sum::<f64>() as u64, c.len() as u64));
+            let per_chain = flags
+                .iter()
+                .map(|c| (c.iter().sum::<f64>() as u64, c.len() as u64));
             assemble::chain_divergences(per_chain, run.sampler.thin)
         }
     };
-    let names = summary.component_names.clone().filter(|v| v.len() == summary.dim);
+    let names = summary
+        .component_names
+        .clone()
+        .filter(|v| v.len() == summary.dim);
     let lap_sd = summary.laplace.as_ref().map(assemble::laplace_sd);
     let facts = RunFacts {
         gradient: assemble::gradient_reading(
@@ -418,7 +423,10 @@ fn report_metadata(d: &ReportData) -> Vec<(String, String)> {
     ];
     if let Some(c) = &s.laplace_check {
         let (k, limit) = khat_text(c.khat, c.khat_threshold);
-        let note = c.khat_note.as_ref().map_or(String::new(), |n| format!(" ({n})"));
+        let note = c
+            .khat_note
+            .as_ref()
+            .map_or(String::new(), |n| format!(" ({n})"));
         metadata.push((
             "Laplace check".into(),
             format!(
@@ -428,6 +436,9 @@ fn report_metadata(d: &ReportData) -> Vec<(String, String)> {
         ));
     }
     let status = d.verdict.status.describe();
-    metadata.push(("status".into(), format!("{status} (exit code {})", d.verdict.exit_code().code())));
+    metadata.push((
+        "status".into(),
+        format!("{status} (exit code {})", d.verdict.exit_code().code()),
+    ));
     metadata
 }
