@@ -151,18 +151,23 @@ fn laplace_check(c: &LaplaceCheckSummary, indent: &str) {
     }
 }
 
-/// The verdict: its status, the exit code, every reason, and the sentences (the component lists in
-/// them are already capped).
+/// The verdict: its status and exit code, every reason as a list, then the sentences after the
+/// headline (which says the same as the list; the component lists in them are already capped).
 pub fn verdict(v: &Verdict) {
+    let reasons = if v.reasons.is_empty() {
+        "every check passed"
+    } else {
+        "because"
+    };
     println!(
-        "verdict: {} (exit code {})",
+        "verdict: {} (exit code {}), {reasons}",
         v.status.describe(),
         v.exit_code().code()
     );
     for r in &v.reasons {
         println!("  - {}", r.describe());
     }
-    for s in &v.sentences {
+    for s in v.sentences.iter().skip(1) {
         println!("  {s}");
     }
 }
