@@ -1,9 +1,9 @@
 //! What the subcommands print on stdout: the results of each stage in a few readable lines. Nothing
 //! here computes beyond formatting.
 
-use crate::diagnostics::{khat_text, Verdict};
+use crate::diagnostics::{against_limit, khat_text, Verdict, ESS_LIMIT, RHAT_LIMIT};
 use crate::optimize::MapResult;
-use crate::output::summary::{LaplaceCheckSummary, LaplaceSummary};
+use crate::output::summary::{DiagnosticsSummary, LaplaceCheckSummary, LaplaceSummary};
 use crate::output::Summary;
 use crate::pipeline::{DemoReport, ReportOutcome, SampleOutcome};
 use crate::precond::SpectrumOf;
@@ -129,13 +129,20 @@ pub fn sample(o: &SampleOutcome) {
     }
     chains(s);
     if let Some(d) = &s.diagnostics {
-        println!(
-            "  R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
-            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
-        );
+        println!("  {}", worst_diagnostics(d));
     }
     verdict(&o.diagnosis.verdict);
     evaluations_by_stage(s);
+}
+
+/// The worst R-hat and ESS, never rounded onto the limit they failed.
+fn worst_diagnostics(d: &DiagnosticsSummary) -> String {
+    format!(
+        "R-hat max {}, bulk ESS min {}, tail ESS min {}",
+        against_limit(d.rhat_max, RHAT_LIMIT, 4).0,
+        against_limit(d.ess_bulk_min, ESS_LIMIT, 0).0,
+        against_limit(d.ess_tail_min, ESS_LIMIT, 0).0
+    )
 }
 
 /// The Laplace check's line: k-hat against the threshold the verdict uses (as many decimals as it
@@ -258,10 +265,7 @@ pub fn demo(r: &DemoReport, out: &std::path::Path) {
         laplace_check(c, "   ");
     }
     if let Some(d) = &s.diagnostics {
-        println!(
-            "5. diagnostics: R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
-            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
-        );
+        println!("5. diagnostics: {}", worst_diagnostics(d));
     }
     verdict(&r.sample.diagnosis.verdict);
     println!(

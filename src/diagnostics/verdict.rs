@@ -394,7 +394,7 @@ fn partial_sentence(p: &RunProgress) -> String {
     format!(
         "The run is partial: the chains hold {} of the {} planned draws each (the diagnostics use the \
          first {used} of every chain), after {} model runs so far. Continue it with `varpost resume \
-         DIR`; the numbers below describe the draws so far only.",
+         DIR`; the diagnostics describe the draws so far only.",
         per_chain.join(", "),
         p.planned,
         p.model_runs
@@ -443,9 +443,11 @@ fn judge_chains(f: &mut Findings, w: &Worst, n_chains: usize) -> bool {
     let all_ok = rhat_ok && bulk_ok && tail_ok && chains_ok;
     if all_ok {
         f.sentences.push(format!(
-            "The {n_chains} chains agree (largest R-hat {:.3}, below {RHAT_LIMIT}) and every component \
-             has at least {ESS_LIMIT:.0} effective draws in the bulk ({:.0}) and in the tails ({:.0}).",
-            w.rhat, w.bulk, w.tail
+            "The {n_chains} chains agree (largest R-hat {}, below {RHAT_LIMIT}) and every component \
+             has at least {ESS_LIMIT:.0} effective draws in the bulk ({}) and in the tails ({}).",
+            against_limit(w.rhat, RHAT_LIMIT, 3).0,
+            ess_text(w.bulk),
+            ess_text(w.tail)
         ));
         return true;
     }
@@ -458,7 +460,7 @@ fn judge_chains(f: &mut Findings, w: &Worst, n_chains: usize) -> bool {
             "The smallest bulk effective sample size is {} (at least {ESS_LIMIT:.0} is needed): means \
              and medians rest on too few effectively independent draws. Run the chains longer or run \
              more chains.",
-            number(w.bulk)
+            ess_text(w.bulk)
         ));
     }
     if !tail_ok {
@@ -466,7 +468,7 @@ fn judge_chains(f: &mut Findings, w: &Worst, n_chains: usize) -> bool {
             "The smallest tail effective sample size is {} (at least {ESS_LIMIT:.0} is needed): the 5% \
              and 95% quantiles, and so the spread, are poorly estimated. Run the chains longer or run \
              more chains.",
-            number(w.tail)
+            ess_text(w.tail)
         ));
     }
     if !chains_ok {
@@ -495,10 +497,11 @@ fn rhat_sentence(rhat_max: f64) -> String {
             .to_string()
     } else {
         format!(
-            "The largest R-hat is {rhat_max:.3} (it must be below {RHAT_LIMIT}): the chains do not yet \
+            "The largest R-hat is {} (it must be below {RHAT_LIMIT}): the chains do not yet \
              agree with each other. Run the chains longer (more warm-up and more draws); if it \
              persists the posterior may have several modes, or the chains started too far apart to \
-             meet."
+             meet.",
+            against_limit(rhat_max, RHAT_LIMIT, 3).0
         )
     }
 }
@@ -555,20 +558,22 @@ fn named_list(items: &[String]) -> String {
     }
 }
 
-/// A value for a sentence: whole numbers for large values, "not computable" for NaN.
-fn number(v: f64) -> String {
-    if v.is_nan() {
-        "not computable".to_string()
-    } else if v.abs() >= 10.0 {
-        format!("{v:.0}")
-    } else {
-        format!("{v:.2}")
+/// `value` and its `limit` as text with at least `decimals` decimals and as many more (up to 6) as it
+/// takes for the two to read differently when they differ, so that a printed value never looks equal
+/// to a limit it failed (an ESS of 399.6 is "399.6", not "400").
+pub fn against_limit(value: f64, limit: f64, decimals: usize) -> (String, String) {
+    let mut pair = (format!("{value:.decimals$}"), format!("{limit:.decimals$}"));
+    for d in decimals + 1..=6 {
+        if pair.0 != pair.1 || value == limit {
+            break;
+        }
+        pair = (format!("{value:.d$}"), format!("{limit:.d$}"));
     }
+    pair
 }
 
-/// k-hat and its limit as text, with as many decimals (2 to 6) as it takes for the two to differ, so
-/// that the printed numbers never contradict the decision: "−inf" for equal weights, "not estimated"
-/// for NaN.
+/// k-hat and its limit as text ([`against_limit`] from 2 decimals): "-inf" for equal weights, "not
+/// estimated" for NaN.
 pub fn khat_text(khat: f64, limit: f64) -> (String, String) {
     if khat.is_nan() {
         return ("not estimated".into(), format!("{limit:.2}"));
@@ -576,14 +581,16 @@ pub fn khat_text(khat: f64, limit: f64) -> (String, String) {
     if khat == f64::NEG_INFINITY {
         return ("-inf".into(), format!("{limit:.2}"));
     }
-    let mut pair = (format!("{khat:.2}"), format!("{limit:.2}"));
-    for d in 3..=6 {
-        if pair.0 != pair.1 {
-            break;
-        }
-        pair = (format!("{khat:.d$}"), format!("{limit:.d$}"));
+    against_limit(khat, limit, 2)
+}
+
+/// An ESS for a sentence: whole draws unless that would read as the limit it failed.
+fn ess_text(v: f64) -> String {
+    if v.is_nan() {
+        "not computable".to_string()
+    } else {
+        against_limit(v, ESS_LIMIT, 0).0
     }
-    pair
 }
 
 /// The Laplace part: the importance check, the spread comparison (after converged chains) and the
@@ -921,6 +928,9 @@ mod tests {
         );
         assert_eq!(khat_text(0.566, 0.5654), ("0.566".into(), "0.565".into()));
         assert_eq!(khat_text(f64::NAN, 0.5).0, "not estimated");
+        assert_eq!(against_limit(399.6, 400.0, 0).0, "399.6");
+        assert_eq!(against_limit(1.0101, 1.01, 3).0, "1.0101");
+        assert_eq!(against_limit(400.0, 400.0, 0).0, "400");
     }
 
     #[test]
@@ -1100,8 +1110,14 @@ mod tests {
     fn unconverged_chains_leave_a_passing_khat_unjudged() {
         let sd = [1.0];
         let mut stats = comps(&[1.0]);
-        stats[0].ess_tail = 399.0;
+        stats[0].ess_tail = 399.6;
         let v = Verdict::judge(&stats, 4, &good_facts(&sd));
+        assert!(
+            v.text()
+                .contains("tail effective sample size is 399.6 (at least 400"),
+            "{}",
+            v.text()
+        );
         assert_eq!(v.status, Status::NotConverged);
         assert_eq!(
             v.reasons,

@@ -84,7 +84,10 @@ fn an_analysis_stopped_before_converging_is_never_green() {
     // The report recomputes the same verdict from the folder.
     let (rtext, rcode) = report(&out);
     assert_eq!(rcode, code, "{rtext}");
-    assert!(rtext.contains("  - the analysis did not converge"), "{rtext}");
+    assert!(
+        rtext.contains("  - the analysis did not converge"),
+        "{rtext}"
+    );
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
     assert!(html.contains("did not converge"));
     assert!(!html.contains("verdict pass"), "a red or neutral verdict");
@@ -157,7 +160,10 @@ fn a_report_on_a_partial_run_is_not_green_and_says_how_far_it_got() {
     partial_run(&out, 100, 400);
     let (text, code) = report(&out);
     assert_eq!(code, Some(5), "{text}");
-    assert!(text.contains("verdict: partial run (exit code 5)"), "{text}");
+    assert!(
+        text.contains("verdict: partial run (exit code 5)"),
+        "{text}"
+    );
     assert!(text.contains("  - the chains have not finished"), "{text}");
     assert!(text.contains("of the 400 planned draws each"), "{text}");
     assert!(text.contains("model runs so far"), "{text}");
@@ -174,7 +180,10 @@ fn a_report_on_a_partial_run_is_not_green_and_says_how_far_it_got() {
         .and_then(|t| t.rsplit(' ').next())
         .and_then(|n| n.parse().ok())
         .expect("the number of model runs");
-    assert!(stated > before, "{stated} model runs stated, {before} before the chains");
+    assert!(
+        stated > before,
+        "{stated} model runs stated, {before} before the chains"
+    );
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
     assert!(html.contains("verdict fail") && html.contains("partial"));
 }
