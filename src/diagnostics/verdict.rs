@@ -222,7 +222,8 @@ pub struct Verdict {
     pub laplace_adequate: Option<bool>,
     /// The k-hat threshold the check was judged against, where it ran.
     pub khat_threshold: Option<f64>,
-    /// Posterior against Laplace spread per component, after converged chains.
+    /// Posterior against Laplace spread per component: the ratios wherever the Laplace standard
+    /// deviations were given, the flags only after converged chains (`NotCompared` before).
     pub spread: Option<SpreadComparison>,
     /// Divergent sampling transitions over all chains, as a fraction, where known.
     pub divergent_fraction: Option<f64>,
@@ -285,12 +286,12 @@ impl Verdict {
         let divergent_fraction = judge_divergences(&mut f, &facts.divergences);
         let (mut spread, mut laplace_adequate, mut khat_limit) = (None, None, None);
         if let Some(l) = facts.laplace {
-            spread = chains_ok
-                .then(|| compare_spread(stats, l.sd).ok())
-                .flatten();
+            spread = compare_spread(stats, l.sd)
+                .ok()
+                .map(|s| judged_after(s, chains_ok));
             khat_limit = l.khat.map(|r| r.limit());
-            laplace_adequate =
-                judge_laplace(&mut f, l.khat, spread.as_ref(), facts.names, chains_ok);
+            let judged = spread.as_ref().filter(|_| chains_ok);
+            laplace_adequate = judge_laplace(&mut f, l.khat, judged, facts.names, chains_ok);
         }
         let status = status_of(&f.reasons);
         let mut sentences = vec![headline(status, &f.reasons)];
@@ -337,6 +338,15 @@ impl Verdict {
     pub fn text(&self) -> String {
         self.sentences.join(" ")
     }
+}
+
+/// The ratios stay for the record, but no component is judged before the chains have converged (their
+/// standard deviations and MCSE are not yet to be trusted).
+fn judged_after(mut s: SpreadComparison, chains_ok: bool) -> SpreadComparison {
+    if !chains_ok {
+        s.flags.fill(SpreadFlag::NotCompared);
+    }
+    s
 }
 
 /// The status the reasons give.
@@ -1100,8 +1110,10 @@ mod tests {
             .map(|c| c.name)
             .collect();
         assert_eq!(failed, vec!["rhat", "chains", "divergences", "khat"]);
-        // Chains not converged: the spread is not compared.
-        assert!(v.spread.is_none());
+        // Chains not converged: the ratios are kept, no component is judged.
+        let spread = v.spread.as_ref().unwrap();
+        assert_eq!(spread.ratio.len(), 2);
+        assert!(spread.flags.iter().all(|f| *f == SpreadFlag::NotCompared));
         assert!(v.text().contains("only once the chains have converged"));
         assert!(v.text().contains("Only 2 chains"));
     }

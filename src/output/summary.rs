@@ -181,8 +181,8 @@ pub struct DiagnosticsSummary {
     /// Divergent sampling transitions over all chains, as a fraction.
     #[serde(default)]
     pub divergent_fraction: Option<f64>,
-    /// Per component: posterior sd / Laplace sd and its Monte Carlo standard error (empty when the
-    /// chains have not converged).
+    /// Per component: posterior sd / Laplace sd and its Monte Carlo standard error (components are
+    /// judged on them only once the chains have converged).
     #[serde(default, deserialize_with = "nullable::vec")]
     pub sd_ratio: Vec<f64>,
     #[serde(default, deserialize_with = "nullable::vec")]

@@ -51,10 +51,11 @@ fn sample_summary_schema() {
         "sample",
         "--problem",
         "linear-gaussian",
+        // Enough draws for the chains to pass their checks, so that every verdict field is filled.
         "--draws",
-        "200",
+        "1000",
         "--warmup",
-        "200",
+        "500",
         "--quiet",
         "--out",
         out.to_str().unwrap(),
