@@ -13,7 +13,7 @@ use crate::diagnostics::{
     autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
     Status, Verdict, CONDITIONAL_CAUTION,
 };
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};
 use crate::output::html::{write_report, Figure, ReportPage};
 use crate::output::plots::{
@@ -100,13 +100,16 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
     let chains = run.sampler.chains;
     let draws = ChainDraws::open(dir, chains)?;
     if draws.dim != summary.dim {
-        return Err(crate::error::Error::format(
+        return Err(Error::format(
             dir.join("summary.json"),
             format!(
                 "the summary says dimension {} but the draws files hold {} components: the folder's files do not belong together",
                 summary.dim, draws.dim
             ),
         ));
+    }
+    if draws.len < 4 {
+        return Err(too_early(dir, &run, &summary, &draws));
     }
     let (stats, _) = diagnose(&Ensemble::Chains(ChainDraws::open(dir, chains)?))?;
     let verdict = verdict_from_disk(dir, &run, &summary, &draws, &stats)?;
@@ -167,6 +170,28 @@ fn verdict_from_disk(
         partial: progress,
     };
     Ok(Verdict::judge(stats, run.sampler.chains, &facts))
+}
+
+/// The error for a run whose chains hold too few draws for any diagnostic yet, saying how far it got.
+fn too_early(dir: &Path, run: &RunConfig, summary: &Summary, draws: &ChainDraws) -> Error {
+    let held = match run_progress(dir, run, summary, draws) {
+        Some(p) => {
+            let per_chain: Vec<String> = p.draws_per_chain.iter().map(u64::to_string).collect();
+            format!(
+                "hold {} of the {} planned draws each, after {} model runs so far",
+                per_chain.join(", "),
+                p.planned,
+                p.model_runs
+            )
+        }
+        None => format!("hold {} draws each", draws.len),
+    };
+    Error::Data(format!(
+        "the chains in {} {held}: diagnostics need at least 4 draws per chain (the run is partial, \
+         perhaps still in its warm-up); report again later, or continue it with `varpost resume {}`",
+        dir.display(),
+        dir.display()
+    ))
 }
 
 /// How far the run got, when some chain holds fewer draws than planned; the model runs are those

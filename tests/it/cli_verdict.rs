@@ -72,6 +72,15 @@ fn an_analysis_stopped_before_converging_is_never_green() {
     assert_eq!(diag["converged"], false);
     assert_eq!(diag["exit_code"].as_i64().map(|c| c as i32), code);
     assert!(reasons(&s).contains(&"analysis_not_converged".to_string()));
+    // One k-hat threshold: the check's, the verdict's and the printed one are the same.
+    let threshold = s["laplace_check"]["khat_threshold"].as_f64().unwrap();
+    assert_eq!(diag["khat_threshold"].as_f64(), Some(threshold));
+    let khat = s["laplace_check"]["khat"].as_f64().unwrap_or(f64::NAN);
+    let (_, printed) = varpost::diagnostics::khat_text(khat, threshold);
+    assert!(
+        text.contains(&format!("(reliable below {printed})")),
+        "{text}"
+    );
     assert!(text.contains("  - the analysis did not converge"), "{text}");
     assert!(text.contains("Raise --max-iters"), "{text}");
     assert!(
@@ -126,9 +135,9 @@ fn a_skipped_gradient_test_is_named_and_not_green() {
 }
 
 /// Samples linear-gaussian into `out` through the library and interrupts the run (as SIGINT would) once
-/// every chain has kept 60 draws, leaving a partial run: the summary written before the chains, the
-/// draws files and a checkpoint.
-fn partial_run(out: &Path, warmup: u64, draws: u64) {
+/// every chain has done `stop_at` iterations (warm-up included), leaving a partial run: the summary
+/// written before the chains, the draws files and a checkpoint.
+fn partial_run(out: &Path, warmup: u64, draws: u64, stop_at: u64) {
     let source = ProblemSource::Builtin {
         name: "linear-gaussian".into(),
         settings: vec![],
@@ -142,7 +151,7 @@ fn partial_run(out: &Path, warmup: u64, draws: u64) {
     let done: Vec<AtomicU64> = (0..cfg.sampler.chains).map(|_| AtomicU64::new(0)).collect();
     let stop = |chain: usize, d: u64, _total: u64| {
         done[chain].store(d, Ordering::SeqCst);
-        if done.iter().all(|x| x.load(Ordering::SeqCst) >= warmup + 60) {
+        if done.iter().all(|x| x.load(Ordering::SeqCst) >= stop_at) {
             interrupt.trigger();
         }
     };
@@ -157,7 +166,7 @@ fn partial_run(out: &Path, warmup: u64, draws: u64) {
 fn a_report_on_a_partial_run_is_not_green_and_says_how_far_it_got() {
     let d = temp_dir("verdict-partial");
     let out = d.join("run");
-    partial_run(&out, 100, 400);
+    partial_run(&out, 100, 400, 160);
     let (text, code) = report(&out);
     assert_eq!(code, Some(5), "{text}");
     assert!(
@@ -186,4 +195,23 @@ fn a_report_on_a_partial_run_is_not_green_and_says_how_far_it_got() {
     );
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
     assert!(html.contains("verdict fail") && html.contains("partial"));
+}
+
+#[test]
+fn a_report_before_the_first_draws_says_how_far_the_run_got() {
+    let d = temp_dir("verdict-warmup");
+    let out = d.join("run");
+    partial_run(&out, 100, 400, 30);
+    let o = run(&["report", out.to_str().unwrap()]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_ne!(o.status.code(), Some(0), "{e}");
+    assert!(
+        e.contains("diagnostics need at least 4 draws per chain"),
+        "{e}"
+    );
+    assert!(e.contains("of the 400 planned draws each"), "{e}");
+    assert!(
+        e.contains("model runs so far") && e.contains("varpost resume"),
+        "{e}"
+    );
 }
