@@ -8,8 +8,8 @@
 //! component whose ratio or error cannot be computed (constant draws, a zero or non-finite Laplace
 //! variance) is *not compared*. The 10% tolerance and the two standard errors are this crate's choice
 //! (common practice, no source): 10% is what a user would call a noticeably wrong spread, two standard
-//! errors keep Monte Carlo noise from naming a component (about 2.3% of agreeing components per side
-//! when the error is Gaussian).
+//! errors keep Monte Carlo noise from naming a component (one whose true ratio sits exactly at 0.9 or
+//! 1.1 is named with probability about 2.3% when the error is Gaussian; one at 1 practically never).
 
 use serde::Serialize;
 
