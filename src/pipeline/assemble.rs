@@ -342,3 +342,61 @@ pub fn chain_divergences(
 pub fn laplace_sd(l: &LaplaceSummary) -> Vec<f64> {
     l.variance.iter().map(|v| v.sqrt()).collect()
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::diagnostics::{LaplaceFacts, RunFacts};
+
+    fn stats(sd: f64) -> ComponentStats {
+        ComponentStats {
+            mean: 0.0,
+            sd,
+            rhat: 1.001,
+            ess_bulk: 2000.0,
+            ess_tail: 1500.0,
+            mcse_mean: 0.01,
+            mcse_sd: 0.01,
+            q05: -sd,
+            q95: sd,
+            mcse_q05: 0.02,
+            mcse_q95: 0.02,
+        }
+    }
+
+    #[test]
+    fn the_summary_names_the_components_whose_spread_the_inverse_hessian_misstates() {
+        // The rule (ratio outside [0.9, 1.1] by more than 2 MCSE) is this crate's: common practice,
+        // no source.
+        let s = vec![stats(1.5), stats(1.0), stats(0.7)];
+        let sd = [1.0, 1.0, 1.0];
+        let names: Vec<String> = ["a", "b", "c"].iter().map(|n| n.to_string()).collect();
+        let facts = RunFacts {
+            laplace: Some(LaplaceFacts {
+                khat: None,
+                sd: &sd,
+            }),
+            names: Some(&names),
+            ..Default::default()
+        };
+        let verdict = Verdict::judge(&s, 4, &facts);
+        let d = Diagnosis {
+            stats: s,
+            ebfmi: None,
+            verdict,
+        };
+        let summary = diagnostics_summary(&d, None, &names);
+        assert_eq!(summary.laplace_understates, vec!["a".to_string()]);
+        assert_eq!(summary.laplace_overstates, vec!["c".to_string()]);
+        assert_eq!(summary.sd_ratio, vec![1.5, 1.0, 0.7]);
+        assert_eq!(summary.laplace_adequate, Some(false));
+        assert_eq!(summary.status, Some(Status::ConvergedWithWarnings));
+        assert_eq!(summary.exit_code, Some(6));
+        assert!(!summary.converged);
+        assert!(
+            summary.verdict.contains("a (1.50 ± 0.01)"),
+            "{}",
+            summary.verdict
+        );
+    }
+}
