@@ -10,7 +10,9 @@
 
 use std::sync::Arc;
 
-use varpost::diagnostics::{component_stats, Verdict};
+use varpost::diagnostics::{
+    component_stats, AnalysisReading, GradientTest, LaplaceFacts, RunFacts, Verdict,
+};
 use varpost::optimize::{find_map, MapConfig};
 use varpost::precond::{laplace, LaplaceOptions};
 use varpost::problem::check::gradient_test;
@@ -85,10 +87,26 @@ fn main() -> varpost::Result<()> {
             s.mean, s.sd, s.rhat, s.ess_bulk
         );
     }
-    println!(
-        "{}",
-        Verdict::from_components(&stats, config.chains, None).text()
-    );
+    // The verdict on what ran here: the gradient test, the analysis, the Laplace standard deviations
+    // (no importance check was run, so the Laplace approximation stays unjudged) and the chains.
+    let facts = RunFacts {
+        gradient: Some(if check.passed {
+            GradientTest::Passed
+        } else {
+            GradientTest::Failed
+        }),
+        analysis: Some(AnalysisReading {
+            converged: map.converged,
+            reason: map.reason.to_string(),
+            iterations: map.iterations,
+        }),
+        laplace: Some(LaplaceFacts {
+            khat: None,
+            sd: &sd,
+        }),
+        ..Default::default()
+    };
+    println!("{}", Verdict::judge(&stats, config.chains, &facts).text());
     println!(
         "evaluations: {} model runs ({} while sampling)",
         problem.counts().model_runs(),

@@ -111,9 +111,13 @@ pub enum ExitCode {
     GradientWrong,
     /// The minimisation did not converge.
     AnalysisNotConverged,
-    /// The ensemble is not to be used as it is: the chains have not converged, or the verdict names
-    /// another reason (a failed check, too many divergences, a partial run).
+    /// The ensemble is not to be used as it is: the chains have not converged, too many transitions
+    /// diverged, or the run is partial (the verdict names every reason).
     EnsembleNotUsable,
+    /// The chains converged and the ensemble can be used, but the verdict names something that needs
+    /// attention: a skipped gradient test, a Laplace approximation that is not adequate or could not
+    /// be judged.
+    ConvergedWithWarnings,
     /// Interrupted by SIGINT/SIGTERM after saving the state.
     Interrupted,
 }
@@ -128,6 +132,7 @@ impl ExitCode {
             ExitCode::GradientWrong => 3,
             ExitCode::AnalysisNotConverged => 4,
             ExitCode::EnsembleNotUsable => 5,
+            ExitCode::ConvergedWithWarnings => 6,
             ExitCode::Interrupted => 130,
         }
     }

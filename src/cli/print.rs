@@ -1,8 +1,9 @@
 //! What the subcommands print on stdout: the results of each stage in a few readable lines. Nothing
 //! here computes beyond formatting.
 
+use crate::diagnostics::{against_limit, khat_text, Verdict, ESS_LIMIT, RHAT_LIMIT};
 use crate::optimize::MapResult;
-use crate::output::summary::LaplaceSummary;
+use crate::output::summary::{DiagnosticsSummary, LaplaceCheckSummary, LaplaceSummary};
 use crate::output::Summary;
 use crate::pipeline::{DemoReport, ReportOutcome, SampleOutcome};
 use crate::precond::SpectrumOf;
@@ -124,20 +125,58 @@ pub fn sample(o: &SampleOutcome) {
         );
     }
     if let Some(c) = &s.laplace_check {
-        println!(
-            "  Laplace check: k-hat {:.2} (reliable below {:.2}), Kish ESS {:.0} of {} draws",
-            c.khat, c.khat_threshold, c.kish_ess, c.draws
-        );
+        laplace_check(c, "  ");
     }
     chains(s);
     if let Some(d) = &s.diagnostics {
-        println!(
-            "  R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
-            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
-        );
-        println!("  {}", d.verdict);
+        println!("  {}", worst_diagnostics(d));
     }
+    verdict(&o.diagnosis.verdict);
     evaluations_by_stage(s);
+}
+
+/// The worst R-hat and ESS, never rounded onto the limit they failed.
+fn worst_diagnostics(d: &DiagnosticsSummary) -> String {
+    format!(
+        "R-hat max {}, bulk ESS min {}, tail ESS min {}",
+        against_limit(d.rhat_max, RHAT_LIMIT, 4).0,
+        against_limit(d.ess_bulk_min, ESS_LIMIT, 0).0,
+        against_limit(d.ess_tail_min, ESS_LIMIT, 0).0
+    )
+}
+
+/// The Laplace check's line: k-hat against the threshold the verdict uses (as many decimals as it
+/// takes to tell them apart), and why k-hat is −∞ or not estimated where it is.
+fn laplace_check(c: &LaplaceCheckSummary, indent: &str) {
+    let (k, limit) = khat_text(c.khat, c.khat_threshold);
+    println!(
+        "{indent}Laplace check: Pareto k-hat {k} (reliable below {limit}), Kish ESS {:.0} of {} draws",
+        c.kish_ess, c.draws
+    );
+    if let Some(note) = &c.khat_note {
+        println!("{indent}  {note}");
+    }
+}
+
+/// The verdict: its status and exit code, every reason as a list, then the sentences after the
+/// headline (which says the same as the list; the component lists in them are already capped).
+pub fn verdict(v: &Verdict) {
+    let reasons = if v.reasons.is_empty() {
+        "every check passed"
+    } else {
+        "because"
+    };
+    println!(
+        "verdict: {} (exit code {}), {reasons}",
+        v.status.describe(),
+        v.exit_code().code()
+    );
+    for r in &v.reasons {
+        println!("  - {}", r.describe());
+    }
+    for s in v.sentences.iter().skip(1) {
+        println!("  {s}");
+    }
 }
 
 fn chains(s: &Summary) {
@@ -199,7 +238,7 @@ pub fn report(r: &ReportOutcome, rows: usize) {
     if r.order.len() > rows {
         println!("  ... {} more in components.csv", r.order.len() - rows);
     }
-    println!("{}", r.verdict.text());
+    verdict(&r.verdict);
     println!("report: {}", r.html.display());
 }
 
@@ -223,18 +262,12 @@ pub fn demo(r: &DemoReport, out: &std::path::Path) {
     }
     demo_spreads(r);
     if let Some(c) = &s.laplace_check {
-        println!(
-            "   Laplace check: Pareto k-hat {:.2}, Kish ESS {:.0} of {} draws",
-            c.khat, c.kish_ess, c.draws
-        );
+        laplace_check(c, "   ");
     }
     if let Some(d) = &s.diagnostics {
-        println!(
-            "5. diagnostics: R-hat max {:.4}, bulk ESS min {:.0}, tail ESS min {:.0}",
-            d.rhat_max, d.ess_bulk_min, d.ess_tail_min
-        );
-        println!("verdict: {}", d.verdict);
+        println!("5. diagnostics: {}", worst_diagnostics(d));
     }
+    verdict(&r.sample.diagnosis.verdict);
     println!(
         "evaluations: {} model runs in all",
         s.evaluations.model_runs()

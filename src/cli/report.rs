@@ -6,9 +6,10 @@ use super::print;
 use crate::error::{ExitCode, Result};
 use crate::pipeline;
 
-/// Writes the report files of the run in `dir` and prints its `rows` worst-converged components.
+/// Writes the report files of the run in `dir` and prints its `rows` worst-converged components; the
+/// verdict decides the exit code, as for `sample` (a partial run is 5).
 pub fn report(dir: &Path, rows: usize) -> Result<ExitCode> {
     let r = pipeline::run_report(dir, &super::command_line())?;
     print::report(&r, rows);
-    Ok(ExitCode::Success)
+    Ok(r.verdict.exit_code())
 }

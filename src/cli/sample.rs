@@ -75,7 +75,7 @@ pub fn resume(dir: &Path, adapter: Option<String>, progress: Progress) -> Result
 }
 
 /// Runs (or continues) the pipeline into `out` with its progress shown, then writes the report. The
-/// ensemble's verdict decides the exit code: not converged is 5.
+/// verdict decides the exit code (`Verdict::exit_code`: 0, 3, 4, 5 or 6).
 fn run(
     loaded: &Loaded,
     cfg: &RunConfig,
@@ -121,11 +121,5 @@ fn run(
         "output: {} (summary.json, components.csv, ensemble.nc)",
         out.display()
     );
-    let summary = &outcome.summary;
-    let converged = summary.diagnostics.as_ref().is_some_and(|d| d.converged);
-    Ok(if converged {
-        ExitCode::Success
-    } else {
-        ExitCode::EnsembleNotUsable
-    })
+    Ok(outcome.diagnosis.verdict.exit_code())
 }

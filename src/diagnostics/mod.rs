@@ -12,7 +12,8 @@
 //! - [`importance_check`]: Pareto k-hat and Kish ESS of importance weights, to judge the Laplace
 //!   (Gaussian at the analysis) approximation;
 //! - [`weighted_component_stats`]: the same summaries for a weighted ensemble;
-//! - [`Verdict`]: a plain-language reading of the checks.
+//! - [`compare_spread`]: posterior against Laplace standard deviations, component by component;
+//! - [`Verdict`]: a plain-language reading of a whole run, with its status and exit code.
 //!
 //! The methods are those of Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, "Rank-normalization,
 //! folding, and localization: an improved R-hat for assessing convergence of MCMC", Bayesian Analysis
@@ -20,14 +21,15 @@
 //! JMLR 25; the arithmetic follows ArviZ 0.23, against which the tests check.
 //!
 //! ```
-//! use varpost::diagnostics::{component_stats, Verdict};
+//! use varpost::diagnostics::{component_stats, RunFacts, Verdict};
 //! // Four chains of one component (a real run has hundreds of draws per chain).
 //! let chains: Vec<Vec<f64>> = (0..4)
 //!     .map(|c| (0..100).map(|i| ((i * 37 + c * 11) % 100) as f64 / 100.0).collect())
 //!     .collect();
 //! let slices: Vec<&[f64]> = chains.iter().map(|c| c.as_slice()).collect();
 //! let stats = component_stats(&slices)?;
-//! let verdict = Verdict::from_components(&[stats], slices.len(), None);
+//! // Chains alone: the other facts of a run (gradient test, analysis, Laplace check) left out.
+//! let verdict = Verdict::judge(&[stats], slices.len(), &RunFacts::default());
 //! println!("{}", verdict.text());
 //! # Ok::<(), varpost::Error>(())
 //! ```
@@ -40,6 +42,7 @@ mod laplace_check;
 mod mcse;
 mod rhat;
 mod special;
+mod spread;
 mod summary;
 mod verdict;
 mod weighted;
@@ -54,9 +57,13 @@ pub use laplace_check::{
 pub use mcse::{mcse_mean, mcse_quantile, mcse_sd};
 pub use rhat::rhat;
 pub use special::inverse_normal_cdf;
+pub use spread::{
+    compare_spread, spread_flag, SpreadComparison, SpreadFlag, SPREAD_MC_ERRORS, SPREAD_TOLERANCE,
+};
 pub use summary::{component_stats, ComponentStats};
 pub use verdict::{
-    Check, KhatReading, Status, Verdict, CONDITIONAL_CAUTION, ESS_LIMIT, KHAT_LIMIT, MIN_CHAINS,
-    RHAT_LIMIT,
+    against_limit, khat_text, AnalysisReading, ChainDivergences, Check, GradientTest, KhatReading,
+    LaplaceFacts, Reason, RunFacts, RunProgress, Status, Verdict, CONDITIONAL_CAUTION,
+    DIVERGENCE_LIMIT, ESS_LIMIT, KHAT_LIMIT, MAX_NAMED, MIN_CHAINS, RHAT_LIMIT,
 };
 pub use weighted::weighted_component_stats;

@@ -3,6 +3,7 @@
 use std::path::Path;
 
 use super::write_atomic;
+use crate::diagnostics::{Reason, Status};
 use crate::error::{Error, Result};
 use crate::precond::{LaplaceInfo, LaplaceMethod};
 use crate::problem::EvalCounts;
@@ -159,10 +160,39 @@ pub struct DiagnosticsSummary {
     pub ess_tail_min: f64,
     /// Pareto k-hat of the Laplace importance weights, where the check ran.
     pub khat: Option<f64>,
-    /// Whether the chains pass the R-hat and ESS thresholds.
+    /// Whether the status is `converged` (every check passed).
     pub converged: bool,
-    /// Whether the Laplace (inverse-Hessian) Gaussian passed the k-hat check.
+    /// The verdict's status: converged, converged_with_warnings, not_converged or partial (absent in
+    /// summaries written before it was recorded).
+    #[serde(default)]
+    pub status: Option<Status>,
+    /// Every reason the status is not `converged`.
+    #[serde(default)]
+    pub reasons: Vec<Reason>,
+    /// The exit code the verdict gives.
+    #[serde(default)]
+    pub exit_code: Option<i32>,
+    /// Whether the inverse Hessian is a usable description of the posterior: k-hat below its threshold
+    /// and every component's sd ratio agreeing (`null`: not established).
     pub laplace_adequate: Option<bool>,
+    /// The k-hat threshold the Laplace check was judged against: min(1 − 1/log10 S, 0.7).
+    #[serde(default)]
+    pub khat_threshold: Option<f64>,
+    /// Divergent sampling transitions over all chains, as a fraction.
+    #[serde(default)]
+    pub divergent_fraction: Option<f64>,
+    /// Per component: posterior sd / Laplace sd and its Monte Carlo standard error (components are
+    /// judged on them only once the chains have converged).
+    #[serde(default, deserialize_with = "nullable::vec")]
+    pub sd_ratio: Vec<f64>,
+    #[serde(default, deserialize_with = "nullable::vec")]
+    pub sd_ratio_mcse: Vec<f64>,
+    /// Components whose spread the inverse Hessian understates (ratio above 1.1 by more than two
+    /// MCSE) and overstates (below 0.9 by more than two MCSE).
+    #[serde(default)]
+    pub laplace_understates: Vec<String>,
+    #[serde(default)]
+    pub laplace_overstates: Vec<String>,
     /// The verdict in plain words, ending with the caution.
     pub verdict: String,
 }
@@ -179,6 +209,9 @@ pub struct LaplaceCheckSummary {
     /// k-hat below this is reliable: min(1 − 1/log10(S), 0.7).
     #[serde(deserialize_with = "nullable::f64")]
     pub khat_threshold: f64,
+    /// Why k-hat is −∞ or could not be estimated, in words.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub khat_note: Option<String>,
     /// Kish effective sample size of the weights, and as a fraction of the draws.
     #[serde(deserialize_with = "nullable::f64")]
     pub kish_ess: f64,
@@ -316,7 +349,16 @@ mod tests {
             ess_tail_min: f64::INFINITY,
             khat: Some(f64::NEG_INFINITY),
             converged: false,
+            status: Some(Status::NotConverged),
+            reasons: vec![Reason::ChainsNotConverged],
+            exit_code: Some(5),
             laplace_adequate: None,
+            khat_threshold: Some(0.7),
+            divergent_fraction: None,
+            sd_ratio: vec![1.0, f64::NAN],
+            sd_ratio_mcse: vec![0.1, f64::NAN],
+            laplace_understates: vec![],
+            laplace_overstates: vec![],
             verdict: String::new(),
         });
         s.write(&dir).unwrap();
@@ -324,6 +366,8 @@ mod tests {
         let d = r.diagnostics.unwrap();
         assert!(d.rhat_max.is_nan() && d.ess_tail_min.is_nan() && d.ess_bulk_min == 10.0);
         assert_eq!(d.khat, None);
+        assert!(d.sd_ratio[0] == 1.0 && d.sd_ratio[1].is_nan());
+        assert_eq!(d.status, Some(Status::NotConverged));
         let _ = std::fs::remove_dir_all(&dir);
     }
 }

@@ -4,7 +4,9 @@ use std::path::Path;
 
 use super::load::Loaded;
 use super::stages::{Analysis, LaplaceCheck};
-use crate::diagnostics::{ComponentStats, Status, Verdict};
+use crate::diagnostics::{
+    AnalysisReading, ChainDivergences, ComponentStats, GradientTest, SpreadFlag, Status, Verdict,
+};
 use crate::error::Result;
 use crate::output::summary::{
     ChainReport, CheckSummary, DiagnosticsSummary, LaplaceCheckSummary, LaplaceSummary, MapSummary,
@@ -75,10 +77,11 @@ pub fn summary(
         let lap_var = results.laplace.as_ref().map(|l| l.variance.as_slice());
         laplace_check_summary(c, sampled_var, lap_var)
     });
+    let names = loaded.names();
     s.diagnostics = results
         .diagnosis
         .as_ref()
-        .map(|d| diagnostics_summary(d, results.laplace_check.as_ref()));
+        .map(|d| diagnostics_summary(d, results.laplace_check.as_ref(), &names));
     s.evaluations = evaluations;
     s.evaluations_by_stage = by_stage.clone();
     s
@@ -120,7 +123,8 @@ pub fn check_summary(r: &GradientReport) -> CheckSummary {
     }
 }
 
-fn map_summary(a: &Analysis) -> MapSummary {
+/// The analysis's record.
+pub fn map_summary(a: &Analysis) -> MapSummary {
     let map = &a.map;
     MapSummary {
         cost: map.cost,
@@ -198,6 +202,7 @@ fn laplace_check_summary(
         failed: c.failed,
         khat: ic.khat,
         khat_threshold: ic.khat_threshold,
+        khat_note: ic.khat_note.clone(),
         kish_ess: ic.kish_ess,
         kish_fraction: ic.kish_ess / c.draws as f64,
         variance_ratio: match (sampled_variance, laplace_variance) {
@@ -227,8 +232,19 @@ fn chain_reports(smp: &Sampled, d: Option<&Diagnosis>) -> Vec<ChainReport> {
         .collect()
 }
 
-fn diagnostics_summary(d: &Diagnosis, check: Option<&LaplaceCheck>) -> DiagnosticsSummary {
+fn diagnostics_summary(
+    d: &Diagnosis,
+    check: Option<&LaplaceCheck>,
+    names: &[String],
+) -> DiagnosticsSummary {
     let stats = &d.stats;
+    let v = &d.verdict;
+    let named = |flag| {
+        v.spread_components(flag)
+            .into_iter()
+            .map(|i| names.get(i).cloned().unwrap_or_else(|| format!("x{i}")))
+            .collect()
+    };
     DiagnosticsSummary {
         rhat_max: stats
             .iter()
@@ -243,9 +259,21 @@ fn diagnostics_summary(d: &Diagnosis, check: Option<&LaplaceCheck>) -> Diagnosti
             .map(|s| s.ess_tail)
             .fold(f64::INFINITY, nan_min),
         khat: check.map(|c| c.check.khat),
-        converged: d.verdict.status == Status::Converged,
-        laplace_adequate: d.verdict.laplace_adequate,
-        verdict: d.verdict.text(),
+        converged: v.status == Status::Converged,
+        status: Some(v.status),
+        reasons: v.reasons.clone(),
+        exit_code: Some(v.exit_code().code()),
+        laplace_adequate: v.laplace_adequate,
+        khat_threshold: v.khat_threshold,
+        divergent_fraction: v.divergent_fraction,
+        sd_ratio: v.spread.as_ref().map_or(Vec::new(), |s| s.ratio.clone()),
+        sd_ratio_mcse: v
+            .spread
+            .as_ref()
+            .map_or(Vec::new(), |s| s.ratio_mcse.clone()),
+        laplace_understates: named(SpreadFlag::Understated),
+        laplace_overstates: named(SpreadFlag::Overstated),
+        verdict: v.text(),
     }
 }
 
@@ -281,5 +309,103 @@ fn posterior_summary(r: &SampleResult, stats: &[ComponentStats]) -> PosteriorSum
         q95: col(|s| s.q95),
         mcse_q05: col(|s| s.mcse_q05),
         mcse_q95: col(|s| s.mcse_q95),
+    }
+}
+
+/// The gradient test as the verdict reads it: its result where it ran, skipped where the run skipped
+/// it; `None` when neither is known.
+pub fn gradient_reading(passed: Option<bool>, skipped: bool) -> Option<GradientTest> {
+    match (passed, skipped) {
+        (Some(true), _) => Some(GradientTest::Passed),
+        (Some(false), _) => Some(GradientTest::Failed),
+        (None, true) => Some(GradientTest::Skipped),
+        (None, false) => None,
+    }
+}
+
+/// The analysis as the verdict reads it.
+pub fn analysis_reading(m: &MapSummary) -> AnalysisReading {
+    AnalysisReading {
+        converged: m.converged,
+        reason: m.reason.clone(),
+        iterations: m.iterations,
+    }
+}
+
+/// Divergences and sampling transitions (kept draws × `thin`) per chain, from (divergences, kept
+/// draws) of each chain.
+pub fn chain_divergences(
+    chains: impl IntoIterator<Item = (u64, u64)>,
+    thin: u64,
+) -> Vec<ChainDivergences> {
+    chains
+        .into_iter()
+        .map(|(divergences, draws)| ChainDivergences {
+            divergences,
+            transitions: draws.saturating_mul(thin.max(1)),
+        })
+        .collect()
+}
+
+/// Standard deviations of the Laplace approximation per component.
+pub fn laplace_sd(l: &LaplaceSummary) -> Vec<f64> {
+    l.variance.iter().map(|v| v.sqrt()).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::diagnostics::{LaplaceFacts, RunFacts};
+
+    fn stats(sd: f64) -> ComponentStats {
+        ComponentStats {
+            mean: 0.0,
+            sd,
+            rhat: 1.001,
+            ess_bulk: 2000.0,
+            ess_tail: 1500.0,
+            mcse_mean: 0.01,
+            mcse_sd: 0.01,
+            q05: -sd,
+            q95: sd,
+            mcse_q05: 0.02,
+            mcse_q95: 0.02,
+        }
+    }
+
+    #[test]
+    fn the_summary_names_the_components_whose_spread_the_inverse_hessian_misstates() {
+        // The rule (ratio outside [0.9, 1.1] by more than 2 MCSE) is this crate's: common practice,
+        // no source.
+        let s = vec![stats(1.5), stats(1.0), stats(0.7)];
+        let sd = [1.0, 1.0, 1.0];
+        let names: Vec<String> = ["a", "b", "c"].iter().map(|n| n.to_string()).collect();
+        let facts = RunFacts {
+            laplace: Some(LaplaceFacts {
+                khat: None,
+                sd: &sd,
+            }),
+            names: Some(&names),
+            ..Default::default()
+        };
+        let verdict = Verdict::judge(&s, 4, &facts);
+        let d = Diagnosis {
+            stats: s,
+            ebfmi: None,
+            verdict,
+        };
+        let summary = diagnostics_summary(&d, None, &names);
+        assert_eq!(summary.laplace_understates, vec!["a".to_string()]);
+        assert_eq!(summary.laplace_overstates, vec!["c".to_string()]);
+        assert_eq!(summary.sd_ratio, vec![1.5, 1.0, 0.7]);
+        assert_eq!(summary.laplace_adequate, Some(false));
+        assert_eq!(summary.status, Some(Status::ConvergedWithWarnings));
+        assert_eq!(summary.exit_code, Some(6));
+        assert!(!summary.converged);
+        assert!(
+            summary.verdict.contains("a (1.50 ± 0.01)"),
+            "{}",
+            summary.verdict
+        );
     }
 }

@@ -5,12 +5,15 @@
 
 use std::path::{Path, PathBuf};
 
+use super::assemble;
 use super::diagnose::diagnose;
 use super::sample::{read_run, SampleOutcome};
+use crate::config::RunConfig;
 use crate::diagnostics::{
-    autocorrelation, ComponentStats, KhatReading, Status, Verdict, CONDITIONAL_CAUTION,
+    autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
+    Status, Verdict, CONDITIONAL_CAUTION,
 };
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};
 use crate::output::html::{write_report, Figure, ReportPage};
 use crate::output::plots::{
@@ -19,7 +22,8 @@ use crate::output::plots::{
 use crate::output::summary::CAUTION;
 use crate::output::table::{write_components, ComponentTable};
 use crate::output::{worst_first, Summary};
-use crate::sampler::{ChainDraws, Ensemble};
+use crate::sampler::draws::FLAG_DIVERGENT;
+use crate::sampler::{ChainDraws, Checkpoint, Ensemble};
 
 /// What the report found and wrote.
 pub struct ReportOutcome {
@@ -96,7 +100,7 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
     let chains = run.sampler.chains;
     let draws = ChainDraws::open(dir, chains)?;
     if draws.dim != summary.dim {
-        return Err(crate::error::Error::format(
+        return Err(Error::format(
             dir.join("summary.json"),
             format!(
                 "the summary says dimension {} but the draws files hold {} components: the folder's files do not belong together",
@@ -104,12 +108,11 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
             ),
         ));
     }
+    if draws.len < 4 {
+        return Err(too_early(dir, &run, &summary, &draws));
+    }
     let (stats, _) = diagnose(&Ensemble::Chains(ChainDraws::open(dir, chains)?))?;
-    let khat = summary.laplace_check.as_ref().map(|c| KhatReading {
-        khat: c.khat,
-        draws: Some(c.draws),
-    });
-    let verdict = Verdict::from_components_with_khat(&stats, chains, khat);
+    let verdict = verdict_from_disk(dir, &run, &summary, &draws, &stats)?;
     let data = ReportData::new(
         summary,
         draws,
@@ -118,6 +121,104 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
         verdict,
     );
     write_all(dir, &data, command_line)
+}
+
+/// The verdict on the run in `dir` from its files: the gradient test, the analysis and the Laplace
+/// check from summary.json, the divergences from the summary's chains (or, for a partial run, from the
+/// draws' flags), and how far a partial run got.
+fn verdict_from_disk(
+    dir: &Path,
+    run: &RunConfig,
+    summary: &Summary,
+    draws: &ChainDraws,
+    stats: &[ComponentStats],
+) -> Result<Verdict> {
+    let progress = run_progress(dir, run, summary, draws);
+    let divergences = match (&summary.chains, &progress) {
+        (Some(ch), None) => assemble::chain_divergences(
+            ch.iter().map(|c| (c.divergences, c.draws)),
+            run.sampler.thin,
+        ),
+        _ => {
+            let flags = draws.per_draw(|r| f64::from(r.flags & FLAG_DIVERGENT != 0))?;
+            let per_chain = flags
+                .iter()
+                .map(|c| (c.iter().sum::<f64>() as u64, c.len() as u64));
+            assemble::chain_divergences(per_chain, run.sampler.thin)
+        }
+    };
+    let names = summary
+        .component_names
+        .clone()
+        .filter(|v| v.len() == summary.dim);
+    let lap_sd = summary.laplace.as_ref().map(assemble::laplace_sd);
+    let facts = RunFacts {
+        gradient: assemble::gradient_reading(
+            summary.check.as_ref().map(|c| c.passed),
+            run.skip_check,
+        ),
+        analysis: summary.map.as_ref().map(assemble::analysis_reading),
+        laplace: lap_sd.as_deref().map(|sd| LaplaceFacts {
+            khat: summary.laplace_check.as_ref().map(|c| KhatReading {
+                khat: c.khat,
+                draws: c.draws,
+            }),
+            sd,
+        }),
+        names: names.as_deref(),
+        divergences,
+        partial: progress,
+    };
+    Ok(Verdict::judge(stats, run.sampler.chains, &facts))
+}
+
+/// The error for a run whose chains hold too few draws for any diagnostic yet, saying how far it got.
+fn too_early(dir: &Path, run: &RunConfig, summary: &Summary, draws: &ChainDraws) -> Error {
+    let held = match run_progress(dir, run, summary, draws) {
+        Some(p) => {
+            let per_chain: Vec<String> = p.draws_per_chain.iter().map(u64::to_string).collect();
+            format!(
+                "hold {} of the {} planned draws each, after {} model runs so far",
+                per_chain.join(", "),
+                p.planned,
+                p.model_runs
+            )
+        }
+        None => format!("hold {} draws each", draws.len),
+    };
+    Error::Data(format!(
+        "the chains in {} {held}: diagnostics need at least 4 draws per chain (the run is partial, \
+         perhaps still in its warm-up); report again later, or continue it with `varpost resume {}`",
+        dir.display(),
+        dir.display()
+    ))
+}
+
+/// How far the run got, when some chain holds fewer draws than planned; the model runs are those
+/// recorded before the chains plus those of the chains as of their last checkpoint.
+fn run_progress(
+    dir: &Path,
+    run: &RunConfig,
+    summary: &Summary,
+    draws: &ChainDraws,
+) -> Option<RunProgress> {
+    let draws_per_chain: Vec<u64> = draws.files().iter().map(|f| f.records).collect();
+    let planned = run.sampler.draws;
+    if draws_per_chain.iter().all(|&d| d >= planned) {
+        return None;
+    }
+    let mut model_runs = summary.evaluations.model_runs();
+    if summary.sampling.is_none() {
+        // The summary predates the chains: add what the chains spent, as checkpointed.
+        if let Ok(ck) = Checkpoint::load(dir) {
+            model_runs += ck.counts_warmup.plus(&ck.counts_sampling).model_runs();
+        }
+    }
+    Some(RunProgress {
+        draws_per_chain,
+        planned,
+        model_runs,
+    })
 }
 
 /// Writes the report files of a sampling run that just ended, from its own diagnostics.
@@ -311,7 +412,12 @@ fn write_html(
     let page = ReportPage {
         title: &page_title,
         verdict: &text,
-        passed: Some(d.verdict.status == Status::Converged),
+        // Green only when every check passed; warnings are drawn neutral, the rest red.
+        passed: match d.verdict.status {
+            Status::Converged => Some(true),
+            Status::ConvergedWithWarnings => None,
+            Status::NotConverged | Status::Partial => Some(false),
+        },
         caution: CAUTION,
         columns,
         rows,
@@ -341,19 +447,23 @@ fn report_metadata(d: &ReportData) -> Vec<(String, String)> {
         ),
     ];
     if let Some(c) = &s.laplace_check {
+        let (k, limit) = khat_text(c.khat, c.khat_threshold);
+        let note = c
+            .khat_note
+            .as_ref()
+            .map_or(String::new(), |n| format!(" ({n})"));
         metadata.push((
             "Laplace check".into(),
             format!(
-                "Pareto k-hat {:.2} (reliable below {:.2}), Kish ESS {:.0} of {}",
-                c.khat, c.khat_threshold, c.kish_ess, c.draws
+                "Pareto k-hat {k} (reliable below {limit}){note}, Kish ESS {:.0} of {}",
+                c.kish_ess, c.draws
             ),
         ));
     }
-    if s.diagnostics.is_none() {
-        metadata.push((
-            "state".into(),
-            "partial run: the chains have not finished".into(),
-        ));
-    }
+    let status = d.verdict.status.describe();
+    metadata.push((
+        "status".into(),
+        format!("{status} (exit code {})", d.verdict.exit_code().code()),
+    ));
     metadata
 }

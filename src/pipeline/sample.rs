@@ -14,7 +14,7 @@ use super::diagnose::diagnose;
 use super::load::Loaded;
 use super::stages::{self, StageCounter};
 use crate::config::RunConfig;
-use crate::diagnostics::Verdict;
+use crate::diagnostics::{LaplaceFacts, RunFacts, Verdict};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::output::Summary;
@@ -92,7 +92,7 @@ pub fn run_sample(
     let evaluations = pre_sampling
         .plus(&result.counts_warmup)
         .plus(&result.counts_sampling);
-    let diagnosis = diagnosis_stage(out, cfg, &results)?;
+    let diagnosis = diagnosis_stage(out, loaded, cfg, &results, &result)?;
     results.sampling = Some(Sampled {
         result,
         config: cfg.sampler.clone(),
@@ -148,13 +148,41 @@ fn chains_stage(
     sampler::run(target, &cfg.sampler, out, ck, interrupt, progress)
 }
 
-/// Diagnostics of the chains' draws and the verdict, with the Laplace check's k-hat.
-fn diagnosis_stage(out: &Path, cfg: &RunConfig, results: &StageResults) -> Result<Diagnosis> {
+/// Diagnostics of the chains' draws and the verdict on the whole run: the gradient test, the analysis,
+/// the Laplace check (k-hat judged against the sample-size threshold of its own draws, the one
+/// threshold) and the chains' divergences.
+fn diagnosis_stage(
+    out: &Path,
+    loaded: &Loaded,
+    cfg: &RunConfig,
+    results: &StageResults,
+    sampled: &SampleResult,
+) -> Result<Diagnosis> {
     let ensemble = Ensemble::Chains(ChainDraws::open(out, cfg.sampler.chains)?);
     let (stats, ebfmi) = diagnose(&ensemble)?;
-    // k-hat judged against the sample-size threshold of the check's own draws (one threshold).
-    let khat = results.laplace_check.as_ref().map(|c| (&c.check).into());
-    let verdict = Verdict::from_components_with_khat(&stats, cfg.sampler.chains, khat);
+    let names = loaded.names();
+    let lap_sd = results.laplace.as_ref().map(assemble::laplace_sd);
+    let facts = RunFacts {
+        gradient: assemble::gradient_reading(
+            results.check.as_ref().map(|c| c.passed),
+            cfg.skip_check,
+        ),
+        analysis: results
+            .analysis
+            .as_ref()
+            .map(|a| assemble::analysis_reading(&assemble::map_summary(a))),
+        laplace: lap_sd.as_deref().map(|sd| LaplaceFacts {
+            khat: results.laplace_check.as_ref().map(|c| (&c.check).into()),
+            sd,
+        }),
+        names: Some(&names),
+        divergences: assemble::chain_divergences(
+            sampled.chains.iter().map(|c| (c.divergences, c.draws)),
+            cfg.sampler.thin,
+        ),
+        partial: None,
+    };
+    let verdict = Verdict::judge(&stats, cfg.sampler.chains, &facts);
     Ok(Diagnosis {
         stats,
         ebfmi,

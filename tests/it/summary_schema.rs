@@ -51,16 +51,17 @@ fn sample_summary_schema() {
         "sample",
         "--problem",
         "linear-gaussian",
+        // Enough draws for the chains to pass their checks, so that every verdict field is filled.
         "--draws",
-        "200",
+        "1000",
         "--warmup",
-        "200",
+        "500",
         "--quiet",
         "--out",
         out.to_str().unwrap(),
     ]);
     assert!(
-        o.status.code() == Some(0) || o.status.code() == Some(5),
+        matches!(o.status.code(), Some(0 | 4 | 5 | 6)),
         "{}",
         String::from_utf8_lossy(&o.stderr)
     );
