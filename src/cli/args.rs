@@ -327,7 +327,8 @@ impl HessianArgs {
 /// Settings of the chains.
 #[derive(Debug, Args)]
 pub struct ChainArgs {
-    /// Sampler kernel.
+    /// Sampler kernel. auto (the default) chooses from the Laplace check: laplace-mh where the
+    /// Laplace Gaussian holds (k-hat and every component's spread), hmc where it does not.
     #[arg(long, value_enum, default_value_t = KernelKind::default())]
     pub kernel: KernelKind,
     /// Metric (preconditioner) of the chains: laplace (the Hessian approximation above), or another

@@ -182,9 +182,18 @@ pub fn verdict(v: &Verdict) {
 fn chains(s: &Summary) {
     if let (Some(sm), Some(ch)) = (&s.sampling, &s.chains) {
         println!(
-            "  {} chains of {} draws, kernel {}, metric {}",
-            sm.chains, sm.draws_per_chain, sm.kernel, sm.metric
+            "  {} chains of {} draws, kernel {}, metric {}, warm-up {} iterations{}",
+            sm.chains,
+            sm.draws_per_chain,
+            sm.kernel,
+            sm.metric,
+            sm.warmup_done,
+            sm.warmup_settled_at
+                .map_or(String::new(), |a| format!(" (settled at {a})"))
         );
+        if let Some(why) = &sm.kernel_reason {
+            println!("    kernel: {why}");
+        }
         for c in ch {
             println!(
                 "    chain {}: acceptance {:.3}, step size {}, divergences {}, rejected (non-finite) {}",

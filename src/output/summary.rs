@@ -234,6 +234,10 @@ pub struct SamplingSummary {
     pub warmup: u64,
     pub thin: u64,
     pub seed: u64,
+    /// Why this kernel samples: chosen by `--kernel auto` from the Laplace check (with the numbers
+    /// that decided), or asked for.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub kernel_reason: Option<String>,
     /// How the warm-up learned the metric (pooled, off, per-chain-diagonal).
     #[serde(default)]
     pub learn_metric: String,

@@ -46,6 +46,8 @@ pub struct StageResults {
     pub laplace: Option<LaplaceSummary>,
     pub laplace_check: Option<LaplaceCheck>,
     pub sampling: Option<Sampled>,
+    /// Why the kernel that samples was chosen (`--kernel auto`, or asked for).
+    pub kernel_reason: Option<String>,
     pub diagnosis: Option<Diagnosis>,
 }
 
@@ -99,6 +101,7 @@ fn sampling_config(r: &StageResults) -> Option<SamplingSummary> {
         thin: c.thin,
         seed: c.seed,
         learn_metric: c.learning().name().into(),
+        kernel_reason: r.kernel_reason.clone(),
         warmup_done: smp.result.warmup_iterations,
         warmup_settled_at: smp.result.plan.as_ref().and_then(|p| p.settled),
         warmup_windows: smp

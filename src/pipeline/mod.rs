@@ -12,6 +12,7 @@
 //! - [`demo`]: every stage on the embedded scenario.
 
 pub mod assemble;
+pub mod choose;
 pub mod demo;
 pub mod diagnose;
 pub mod load;

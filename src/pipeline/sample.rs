@@ -10,6 +10,7 @@ use std::path::Path;
 use std::sync::Arc;
 
 use super::assemble::{self, laplace_summary, Diagnosis, Sampled, StageResults};
+use super::choose::choose_kernel;
 use super::diagnose::diagnose;
 use super::load::Loaded;
 use super::stages::{self, StageCounter};
@@ -20,7 +21,9 @@ use crate::interrupt::Interrupt;
 use crate::output::Summary;
 use crate::precond::Preconditioner;
 use crate::sampler::checkpoint::checkpoint_path;
-use crate::sampler::{self, ChainDraws, Checkpoint, Ensemble, Progress, SampleResult, Target};
+use crate::sampler::{
+    self, ChainDraws, Checkpoint, Ensemble, Progress, SampleConfig, SampleResult, Target,
+};
 
 const RECORD_FILE: &str = "evaluations.vprec";
 
@@ -76,7 +79,28 @@ pub fn run_sample(
         cfg.laplace_check.draws,
         cfg.check_seed,
     )?;
+    let check_target = Target::new(problem, &loaded.name, analysis.map.x.clone(), lap_precond)?;
+    let lap_var = results
+        .laplace
+        .as_ref()
+        .map(|l| l.variance.clone())
+        .unwrap_or_default();
+    let choice = choose_kernel(
+        cfg.sampler.kernel,
+        &mut results.laplace_check,
+        Some(&check_target),
+        &lap_var,
+        cfg.check_seed,
+    )?;
     counter.end("laplace_check");
+    let cfg = &RunConfig {
+        sampler: SampleConfig {
+            kernel: choice.kernel,
+            ..cfg.sampler.clone()
+        },
+        ..cfg.clone()
+    };
+    results.kernel_reason = Some(choice.reason);
     let x_star = analysis.map.x.clone();
     results.analysis = Some(analysis);
     let pre_sampling = problem.counts();

@@ -14,7 +14,7 @@ use crate::optimize::{find_map, MapConfig, MapResult};
 use crate::precond::{laplace, IdentityPrecond, Laplace, LaplaceOptions, Preconditioner};
 use crate::problem::check::{taylor_test, GradientReport};
 use crate::problem::{CostSplit, Counted, EvalCounts, Problem};
-use crate::sampler::importance::laplace_draws;
+use crate::sampler::importance::{laplace_draws, ImportanceDraws};
 use crate::sampler::{CountedProblem, Target};
 
 /// Model runs spent per stage, in the order the stages ran.
@@ -104,6 +104,21 @@ pub struct LaplaceCheck {
     pub failed: usize,
     /// Draws made.
     pub draws: usize,
+    /// The weighted draws themselves.
+    pub sample: ImportanceDraws,
+}
+
+impl LaplaceCheck {
+    /// The check of the weighted draws `d`.
+    pub fn of(d: ImportanceDraws) -> Result<LaplaceCheck> {
+        let check = diagnostics::importance_check(&d.log_target, &d.log_proposal)?;
+        Ok(LaplaceCheck {
+            check,
+            failed: d.failed,
+            draws: d.len(),
+            sample: d,
+        })
+    }
 }
 
 /// How far the Laplace Gaussian holds: `draws` cost-only evaluations at its draws, weighted by the
@@ -121,13 +136,7 @@ pub fn laplace_check_stage<'p>(
         return Ok(None);
     }
     let target = Target::new(problem, name, map.x.clone(), laplace_precond)?;
-    let d = laplace_draws(&target, draws, seed)?;
-    let check = diagnostics::importance_check(&d.log_target, &d.log_proposal)?;
-    Ok(Some(LaplaceCheck {
-        check,
-        failed: d.failed,
-        draws,
-    }))
+    LaplaceCheck::of(laplace_draws(&target, draws, seed)?).map(Some)
 }
 
 /// The start point of a run from its configuration.

@@ -23,8 +23,12 @@ use crate::error::{Error, Result};
 #[serde(rename_all = "kebab-case")]
 #[value(rename_all = "kebab-case")]
 pub enum KernelKind {
-    /// Hamiltonian Monte Carlo with the leapfrog integrator (the default).
+    /// Chosen by the pipeline from the Laplace check (the default): the independence sampler where
+    /// the Laplace Gaussian holds, HMC where it does not (see `pipeline::choose`). Without a check to
+    /// choose from (the sampler called on its own, or `--laplace-draws 0`) it is HMC.
     #[default]
+    Auto,
+    /// Hamiltonian Monte Carlo with the leapfrog integrator.
     Hmc,
     /// Preconditioned Metropolis-adjusted Langevin.
     Mala,
@@ -38,6 +42,7 @@ impl KernelKind {
     /// The name used in options and outputs.
     pub fn name(&self) -> &'static str {
         match self {
+            KernelKind::Auto => "auto",
             KernelKind::Mala => "mala",
             KernelKind::Hmc => "hmc",
             KernelKind::LaplaceMh => "laplace-mh",
@@ -314,7 +319,9 @@ impl SampleConfig {
         self.validate()?;
         Ok(match self.kernel {
             KernelKind::Mala => Box::new(Mala),
-            KernelKind::Hmc => Box::new(Hmc::new(self.hmc.time, self.hmc.max_steps)),
+            KernelKind::Hmc | KernelKind::Auto => {
+                Box::new(Hmc::new(self.hmc.time, self.hmc.max_steps))
+            }
             KernelKind::LaplaceMh => Box::new(LaplaceMh::new(self.independence.t_dof)?),
             KernelKind::Nuts => Box::new(Nuts::new(self.nuts.max_depth)?),
         })
@@ -360,6 +367,12 @@ mod tests {
             KernelKind::from_str("laplace-mh", false).unwrap(),
             KernelKind::LaplaceMh
         );
-        assert_eq!(SampleConfig::default().kernel, KernelKind::Hmc);
+        assert_eq!(SampleConfig::default().kernel, KernelKind::Auto);
+        let auto = SampleConfig::default().build_kernel().unwrap();
+        assert_eq!(
+            auto.spec(3).name,
+            "hmc",
+            "auto with nothing to choose from is HMC"
+        );
     }
 }

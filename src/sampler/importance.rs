@@ -30,8 +30,19 @@ pub struct ImportanceDraws {
 
 /// `k` draws of the Laplace Gaussian of `target`, evaluated as one batch.
 pub fn laplace_draws(target: &Target<'_>, k: usize, seed: u64) -> Result<ImportanceDraws> {
+    laplace_draws_from(target, 0, k, seed)
+}
+
+/// Draws `first` … `first + k − 1` of the Laplace Gaussian of `target` (the same draws whatever the
+/// batches they are asked in), evaluated as one batch.
+pub fn laplace_draws_from(
+    target: &Target<'_>,
+    first: usize,
+    k: usize,
+    seed: u64,
+) -> Result<ImportanceDraws> {
     let n = target.dim();
-    let us: Vec<Vec<f64>> = (0..k)
+    let us: Vec<Vec<f64>> = (first..first + k)
         .map(|i| {
             let mut rng = ChaCha8Rng::seed_from_u64(seed);
             rng.set_stream(STREAM_OFFSET + i as u64);
@@ -70,4 +81,25 @@ pub fn laplace_draws(target: &Target<'_>, k: usize, seed: u64) -> Result<Importa
         log_proposal,
         failed,
     })
+}
+
+impl ImportanceDraws {
+    /// These draws followed by `more`.
+    pub fn extend(&mut self, more: ImportanceDraws) {
+        self.draws.x.extend(more.draws.x);
+        self.draws.log_weights.extend(more.draws.log_weights);
+        self.log_target.extend(more.log_target);
+        self.log_proposal.extend(more.log_proposal);
+        self.failed += more.failed;
+    }
+
+    /// Number of draws.
+    pub fn len(&self) -> usize {
+        self.log_target.len()
+    }
+
+    /// Whether there are no draws.
+    pub fn is_empty(&self) -> bool {
+        self.log_target.is_empty()
+    }
 }
