@@ -3,6 +3,7 @@
 
 use nalgebra::DMatrix;
 
+use super::forcing::ForcingPrior;
 use super::model::Lorenz96Model;
 use super::obs::ObsOperator;
 use crate::error::{Error, Result};
@@ -61,6 +62,10 @@ pub struct Lorenz96Config {
     pub synth: SynthMode,
     /// Synthetic generation: the seed.
     pub seed: u64,
+    /// Joint estimation of the forcing: its prior N(F_b, σ_F²), or `None` when F is fixed at
+    /// `model.forcing` and the control vector is x0 alone (absent from scenario files made without it).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub forcing_prior: Option<ForcingPrior>,
 }
 
 impl Default for Lorenz96Config {
@@ -77,6 +82,7 @@ impl Default for Lorenz96Config {
             spinup: 1000,
             synth: SynthMode::Demo,
             seed: 96,
+            forcing_prior: None,
         }
     }
 }
@@ -107,6 +113,7 @@ impl Lorenz96Config {
             spinup: s.get("spinup", d.spinup)?,
             synth,
             seed: s.get("seed", d.seed)?,
+            forcing_prior: ForcingPrior::from_settings(s, model.forcing)?,
         };
         c.validate()?;
         Ok(c)
@@ -138,6 +145,9 @@ impl Lorenz96Config {
             scale(key, v)?;
         }
         observation_schedule(self.window, self.obs_every, self.obs_stride, self.model.n)?;
+        if let Some(p) = &self.forcing_prior {
+            p.validate()?;
+        }
         if self.spinup > MAX_SPINUP {
             return Err(Error::Config(format!(
                 "setting spinup={}: at most {MAX_SPINUP} steps (the truth reaches the attractor within \
@@ -166,10 +176,12 @@ impl Lorenz96Config {
             .saturating_mul(32 + 24)
             .saturating_add(steps.saturating_mul(VEC_HEADER));
         let threads = concurrent_evaluations();
+        // The prior's matrix covers the whole control vector (n + 1 with the forcing estimated).
+        let nc = self.control_dim() as u128;
         MemoryPlan::new()
             .part(
                 "the background-error covariance B, its copy and its Cholesky factor (3 n^2 numbers)",
-                n.saturating_mul(n).saturating_mul(24),
+                nc.saturating_mul(nc).saturating_mul(24),
                 "lower n",
             )
             .part(

@@ -1,5 +1,7 @@
-//! The Lorenz-96 4D-Var cost function J and its gradient by the adjoint of the RK4 step.
+//! The Lorenz-96 4D-Var cost function J and its gradient by the adjoint of the RK4 step, over the
+//! control vector x0 or, with the forcing estimated, [x0; F].
 
+use super::model::Lorenz96Model;
 use super::scenario::Scenario;
 use crate::error::{EvalError, Result};
 use crate::problem::batch::parallel_costs;
@@ -19,7 +21,7 @@ impl Lorenz96 {
     pub fn new(scenario: Scenario) -> Result<Self> {
         let c = &scenario.config;
         c.validate()?;
-        let prior = c.dense_prior(scenario.background.clone())?;
+        let prior = c.control_prior(scenario.background.clone())?;
         let mut obs_at = vec![Vec::new(); c.window + 1];
         for o in &scenario.observations {
             obs_at[o.step].push((o.site, o.value, 1.0 / (o.sigma * o.sigma)));
@@ -36,32 +38,43 @@ impl Lorenz96 {
         &self.scenario
     }
 
-    /// The background prior N(xb, B) as a dense matrix form.
+    /// The prior of the control vector as a dense matrix form: N(xb, B), or with the forcing estimated
+    /// N([xb; F_b], diag(B, σ_F²)).
     pub fn dense_prior(&self) -> &DensePrior {
         &self.prior
     }
 
     fn split(
         &self,
-        x: &[f64],
+        u: &[f64],
         grad: Option<&mut [f64]>,
     ) -> std::result::Result<CostSplit, EvalError> {
-        let model = self.scenario.config.model;
-        let op = self.scenario.config.obs_op;
-        let n = model.n;
-        check_len("the control vector", x, n)?;
+        let config = &self.scenario.config;
+        let op = config.obs_op;
+        let n = config.model.n;
+        let dim = config.control_dim();
+        check_len("the control vector", u, dim)?;
         if let Some(g) = &grad {
-            check_len("the gradient buffer", g, n)?;
+            check_len("the gradient buffer", g, dim)?;
         }
-        let dxb: Vec<f64> = x
+        // With the forcing estimated, u = [x0; F] and the model runs with that F.
+        let model = match config.forcing_prior {
+            Some(_) => Lorenz96Model {
+                forcing: u[n],
+                ..config.model
+            },
+            None => config.model,
+        };
+        let x = &u[..n];
+        let dxb: Vec<f64> = u
             .iter()
             .zip(self.prior.mean())
             .map(|(a, b)| a - b)
             .collect();
-        let mut binv_d = vec![0.0; n];
+        let mut binv_d = vec![0.0; dim];
         self.prior.solve(&dxb, &mut binv_d);
         let jb = 0.5 * dxb.iter().zip(&binv_d).map(|(a, b)| a * b).sum::<f64>();
-        let traj = model.run(x, self.scenario.config.window);
+        let traj = model.run(x, config.window);
         let mut jo = 0.0;
         // forcing[k] = ∂Jo/∂x_k
         let mut forcing = vec![vec![0.0; n]; traj.len()];
@@ -74,15 +87,12 @@ impl Lorenz96 {
             }
         }
         if let Some(g) = grad {
-            let mut a = forcing[traj.len() - 1].clone();
-            for k in (0..traj.len() - 1).rev() {
-                a = model.step_adj(&traj[k], &a);
-                for i in 0..n {
-                    a[i] += forcing[k][i];
-                }
-            }
+            let (a, af) = self.adjoint(&model, &traj, &forcing);
             for i in 0..n {
                 g[i] = binv_d[i] + a[i];
+            }
+            if dim > n {
+                g[n] = binv_d[n] + af;
             }
         }
         Ok(CostSplit {
@@ -90,14 +100,48 @@ impl Lorenz96 {
             observation: jo,
         })
     }
+
+    /// The adjoint run backwards over the window: ∂Jo/∂x0 and, with the forcing estimated, ∂Jo/∂F, the
+    /// sum over the steps of the step adjoint's F part (zero when F is fixed).
+    fn adjoint(
+        &self,
+        model: &Lorenz96Model,
+        traj: &[Vec<f64>],
+        forcing: &[Vec<f64>],
+    ) -> (Vec<f64>, f64) {
+        let n = model.n;
+        let with_f = self.scenario.config.forcing_prior.is_some();
+        let mut a = forcing[traj.len() - 1].clone();
+        let mut af = 0.0;
+        for k in (0..traj.len() - 1).rev() {
+            a = match with_f {
+                true => {
+                    let (ax, f) = model.step_adj_forcing(&traj[k], &a);
+                    af += f;
+                    ax
+                }
+                false => model.step_adj(&traj[k], &a),
+            };
+            for i in 0..n {
+                a[i] += forcing[k][i];
+            }
+        }
+        (a, af)
+    }
 }
 
 impl Problem for Lorenz96 {
     fn dim(&self) -> usize {
-        self.scenario.config.model.n
+        self.scenario.config.control_dim()
     }
+    /// x0 … x{n−1}, and "F" for the forcing when it is estimated.
     fn component_names(&self) -> Option<Vec<String>> {
-        Some((0..self.dim()).map(|i| format!("x{i}")).collect())
+        let n = self.scenario.config.model.n;
+        let mut names: Vec<String> = (0..n).map(|i| format!("x{i}")).collect();
+        if self.dim() > n {
+            names.push("F".into());
+        }
+        Some(names)
     }
     fn cost_grad(&self, x: &[f64], grad: &mut [f64]) -> std::result::Result<f64, EvalError> {
         let s = self.split(x, Some(grad))?;

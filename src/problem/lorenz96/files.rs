@@ -9,15 +9,22 @@ use super::scenario::Scenario;
 use crate::error::{Error, Result};
 
 impl Scenario {
+    /// The scenario's files: (file name, contents) for scenario.json, background.csv, observations.csv
     /// and, where the truth is known, truth.csv. Numbers are written in Rust's shortest round-trip form.
     pub fn to_files(&self) -> Result<Vec<(&'static str, String)>> {
         let mut files = Vec::new();
-        let scenario = serde_json::json!({
+        let mut scenario = serde_json::json!({
             "about": "Invented scenario for the varpost demo: a ring of weather stations around an \
                       imaginary polar sea, modelled by Lorenz-96. No real place or data.",
             "format": "varpost-lorenz96 scenario, version 1",
             "config": self.config,
         });
+        // With the forcing estimated, the truth's F belongs to the truth (truth.csv holds states only).
+        if let (Some(_), Some(_), Some(f)) =
+            (&self.config.forcing_prior, &self.truth, self.truth_forcing)
+        {
+            scenario["truth_forcing"] = serde_json::json!(f);
+        }
         let text = serde_json::to_string_pretty(&scenario)
             .map_err(|e| Error::Config(format!("cannot encode the scenario: {e}")))?;
         files.push(("scenario.json", text + "\n"));
@@ -161,12 +168,37 @@ impl Scenario {
                 Some(t)
             }
         };
+        let truth_forcing = match &truth {
+            None => None,
+            Some(_) => Some(truth_forcing(&sp, &v, &config)?),
+        };
         Ok(Scenario {
             config,
             background: xb,
             observations: obs,
             truth,
+            truth_forcing,
         })
+    }
+}
+
+/// The truth's forcing of a scenario with a known truth: `truth_forcing` from scenario.json, which a
+/// scenario with the forcing estimated must give; otherwise the setting `forcing`.
+fn truth_forcing(path: &Path, v: &serde_json::Value, config: &Lorenz96Config) -> Result<f64> {
+    match (v.get("truth_forcing"), config.forcing_prior) {
+        (None, None) => Ok(config.model.forcing),
+        (None, Some(_)) => Err(Error::format(
+            path,
+            "the forcing is estimated (config.forcing_prior) and truth.csv is given, but \
+             \"truth_forcing\" (the truth's F) is missing; add it or remove truth.csv",
+        )),
+        (Some(f), _) => match f.as_f64() {
+            Some(f) if f.is_finite() => Ok(f),
+            _ => Err(Error::format(
+                path,
+                format!("\"truth_forcing\" is {f}, not a finite number"),
+            )),
+        },
     }
 }
 

@@ -10,25 +10,39 @@
 //! x² where the posterior stops being Gaussian), B a SOAR correlation on the ring times σ_b², and a
 //! diagonal R. The gradient comes from the hand-written adjoint of the RK4 step (tangent-linear and
 //! adjoint are tested against each other and against finite differences).
+//!
+//! With `estimate_forcing=true` the control vector is [x0; F]: the forcing is estimated with the
+//! initial state under its own Gaussian prior, independent of B (see `forcing`).
+//!
+//! Files: `model` (tendency, RK4 step, tangent-linear, adjoint), `obs` (observations and h), `config`
+//! (settings, ranges, memory, B), `forcing` (the forcing prior), `scenario` (synthetic truth, background
+//! and observations), `files` (scenario folders), `cost` (J and its gradient).
 
 mod config;
 mod cost;
 mod files;
+mod forcing;
 mod model;
 mod obs;
 mod scenario;
 
 pub use config::{Lorenz96Config, SynthMode, MAX_SPINUP};
 pub use cost::Lorenz96;
+pub use forcing::{ForcingPrior, DEFAULT_FORCING_PRIOR_SD};
 pub use model::Lorenz96Model;
 pub use obs::{ObsOperator, Observation};
 pub(crate) use scenario::normal_draws;
 pub use scenario::Scenario;
 
-/// Describes the observation operator for summaries.
+/// Describes the problem for summaries: the model, the window, the observation operator, and the
+/// forcing prior where the forcing is estimated.
 pub fn describe(c: &Lorenz96Config) -> String {
+    let forcing = match c.forcing_prior {
+        None => String::new(),
+        Some(p) => format!(", F estimated with prior N({}, {}^2)", p.mean, p.sd),
+    };
     format!(
-        "Lorenz-96, n = {}, F = {}, dt = {}, window {} steps, observation operator {}",
+        "Lorenz-96, n = {}, F = {}, dt = {}, window {} steps, observation operator {}{forcing}",
         c.model.n,
         c.model.forcing,
         c.model.dt,
@@ -36,3 +50,6 @@ pub fn describe(c: &Lorenz96Config) -> String {
         c.obs_op.name()
     )
 }
+
+#[cfg(test)]
+mod tests;

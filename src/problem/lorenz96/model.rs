@@ -99,10 +99,25 @@ impl Lorenz96Model {
     /// The tangent-linear of one RK4 step at x, applied to dx.
     pub fn step_tl(&self, x: &[f64], dx: &[f64]) -> Vec<f64> {
         let (s, _) = self.stages(x);
-        self.step_tl_stages(&s, dx)
+        self.step_tl_stages(&s, dx, 0.0)
     }
 
-    fn step_tl_stages(&self, s: &Stages, dx: &[f64]) -> Vec<f64> {
+    /// The tangent-linear of one RK4 step at (x, F) with respect to both, applied to (dx, dF): the
+    /// forcing enters every stage's tendency (∂f/∂F = 1 at every site), so dF is added to each of the
+    /// four stage increments.
+    pub fn step_tl_forcing(&self, x: &[f64], dx: &[f64], df: f64) -> Vec<f64> {
+        let (s, _) = self.stages(x);
+        self.step_tl_stages(&s, dx, df)
+    }
+
+    /// Adds dF (∂f/∂F times the forcing increment) to a stage increment.
+    fn add_forcing(d: &mut [f64], df: f64) {
+        if df != 0.0 {
+            d.iter_mut().for_each(|v| *v += df);
+        }
+    }
+
+    fn step_tl_stages(&self, s: &Stages, dx: &[f64], df: f64) -> Vec<f64> {
         let n = self.n;
         let h = self.dt;
         let mut d1 = vec![0.0; n];
@@ -110,12 +125,16 @@ impl Lorenz96Model {
         let mut d3 = vec![0.0; n];
         let mut d4 = vec![0.0; n];
         self.tendency_tl(&s.x, dx, &mut d1);
+        Self::add_forcing(&mut d1, df);
         let w2: Vec<f64> = (0..n).map(|i| dx[i] + 0.5 * h * d1[i]).collect();
         self.tendency_tl(&s.x2, &w2, &mut d2);
+        Self::add_forcing(&mut d2, df);
         let w3: Vec<f64> = (0..n).map(|i| dx[i] + 0.5 * h * d2[i]).collect();
         self.tendency_tl(&s.x3, &w3, &mut d3);
+        Self::add_forcing(&mut d3, df);
         let w4: Vec<f64> = (0..n).map(|i| dx[i] + h * d3[i]).collect();
         self.tendency_tl(&s.x4, &w4, &mut d4);
+        Self::add_forcing(&mut d4, df);
         (0..n)
             .map(|i| dx[i] + h / 6.0 * (d1[i] + 2.0 * d2[i] + 2.0 * d3[i] + d4[i]))
             .collect()
@@ -124,10 +143,18 @@ impl Lorenz96Model {
     /// The adjoint of one RK4 step at x, applied to a (the adjoint of the step's output).
     pub fn step_adj(&self, x: &[f64], a: &[f64]) -> Vec<f64> {
         let (s, _) = self.stages(x);
+        self.step_adj_stages(&s, a).0
+    }
+
+    /// The adjoint of one RK4 step at (x, F) with respect to both, applied to a: returns the adjoint of
+    /// x and the adjoint of F. The latter sums, over the four stages, the adjoint of each stage's
+    /// tendency contracted with ∂f/∂F = (1, …, 1).
+    pub fn step_adj_forcing(&self, x: &[f64], a: &[f64]) -> (Vec<f64>, f64) {
+        let (s, _) = self.stages(x);
         self.step_adj_stages(&s, a)
     }
 
-    fn step_adj_stages(&self, s: &Stages, a: &[f64]) -> Vec<f64> {
+    fn step_adj_stages(&self, s: &Stages, a: &[f64]) -> (Vec<f64>, f64) {
         let n = self.n;
         let h = self.dt;
         let mut ax = a.to_vec();
@@ -135,6 +162,10 @@ impl Lorenz96Model {
         let mut a_k3: Vec<f64> = a.iter().map(|v| h / 3.0 * v).collect();
         let mut a_k2: Vec<f64> = a_k3.clone();
         let mut a_k1: Vec<f64> = a_k4.clone();
+        // F adds 1 at every site of every stage tendency, so its adjoint is the sum of the adjoints
+        // of the four tendencies (each taken once complete).
+        let sum = |v: &[f64]| v.iter().sum::<f64>();
+        let mut af = sum(&a_k4);
         // k4 = f'(x4) (dx + h k3)
         let mut a_w = vec![0.0; n];
         self.tendency_adj(&s.x4, &a_k4, &mut a_w);
@@ -143,6 +174,7 @@ impl Lorenz96Model {
             a_k3[i] += h * a_w[i];
         }
         // k3 = f'(x3) (dx + h/2 k2)
+        af += sum(&a_k3);
         a_w.iter_mut().for_each(|v| *v = 0.0);
         self.tendency_adj(&s.x3, &a_k3, &mut a_w);
         for i in 0..n {
@@ -150,6 +182,7 @@ impl Lorenz96Model {
             a_k2[i] += 0.5 * h * a_w[i];
         }
         // k2 = f'(x2) (dx + h/2 k1)
+        af += sum(&a_k2);
         a_w.iter_mut().for_each(|v| *v = 0.0);
         self.tendency_adj(&s.x2, &a_k2, &mut a_w);
         for i in 0..n {
@@ -157,8 +190,9 @@ impl Lorenz96Model {
             a_k1[i] += 0.5 * h * a_w[i];
         }
         // k1 = f'(x) dx
+        af += sum(&a_k1);
         self.tendency_adj(&s.x, &a_k1, &mut ax);
-        ax
+        (ax, af)
     }
 
     /// The trajectory x_0 … x_steps from x0.

@@ -5,6 +5,7 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
 use super::config::{Lorenz96Config, SynthMode};
+use super::model::Lorenz96Model;
 use super::obs::Observation;
 use crate::error::{Error, Result};
 use crate::problem::prior::Prior;
@@ -17,6 +18,9 @@ pub struct Scenario {
     pub observations: Vec<Observation>,
     /// The true trajectory over the window (steps 0..=window), where the scenario is synthetic.
     pub truth: Option<Vec<Vec<f64>>>,
+    /// The forcing F of the truth run, where the truth is known: the setting `forcing`, except with
+    /// `synth=calibration` and the forcing estimated, where it is a draw from the forcing prior.
+    pub truth_forcing: Option<f64>,
 }
 
 /// n independent standard normal draws.
@@ -26,6 +30,10 @@ pub(crate) fn normal_draws(rng: &mut ChaCha8Rng, n: usize) -> Vec<f64> {
 
 impl Scenario {
     /// Generates a synthetic scenario from its settings and seed (see [`SynthMode`]).
+    ///
+    /// With the forcing estimated, `synth=demo` runs the truth with F = `forcing` (the prior mean
+    /// `forcing_prior_mean` defaults to the same value); `synth=calibration` draws the truth's F from
+    /// N(F_b, σ_F²) after the truth's x0, so that (x0, F) is a draw from the joint prior.
     pub fn synthesize(config: &Lorenz96Config) -> Result<Self> {
         config.validate()?;
         let model = config.model;
@@ -47,43 +55,81 @@ impl Scenario {
             e
         };
         let eb = sqrt_draw(&mut rng);
-        let (background, truth0) = match config.synth {
-            SynthMode::Demo => ((0..n).map(|i| x[i] + eb[i]).collect::<Vec<_>>(), x),
+        let (background, truth0, truth_f) = match config.synth {
+            SynthMode::Demo => {
+                let xb = (0..n).map(|i| x[i] + eb[i]).collect::<Vec<_>>();
+                (xb, x, model.forcing)
+            }
             SynthMode::Calibration => {
                 let xb: Vec<f64> = (0..n).map(|i| x[i] + eb[i]).collect();
                 let et = sqrt_draw(&mut rng);
                 let t = (0..n).map(|i| xb[i] + et[i]).collect();
-                (xb, t)
+                let f = match config.forcing_prior {
+                    None => model.forcing,
+                    Some(fp) => fp.mean + fp.sd * normal_draws(&mut rng, 1)[0],
+                };
+                (xb, t, f)
             }
         };
-        let truth = model.run(&truth0, config.window);
-        if let Some(k) = truth.iter().position(|x| x.iter().any(|v| !v.is_finite())) {
-            return Err(Error::Config(format!(
-                "settings dt={} and forcing={}: the truth run blew up (non-finite state at step {k} \
-                 of the window); use a smaller dt (0.05 is the standard step for forcing 8)",
-                model.dt, model.forcing
-            )));
-        }
-        let mut observations = Vec::new();
-        let mut step = config.obs_every;
-        while step <= config.window {
-            for site in (0..n).step_by(config.obs_stride) {
-                let z: f64 = StandardNormal.sample(&mut rng);
-                let value = config.obs_op.apply(truth[step][site]) + config.sigma_o * z;
-                observations.push(Observation {
-                    step,
-                    site,
-                    value,
-                    sigma: config.sigma_o,
-                });
-            }
-            step += config.obs_every;
-        }
+        let truth = truth_run(config, &truth0, truth_f)?;
+        let observations = observe(config, &truth, &mut rng);
         Ok(Scenario {
             config: config.clone(),
             background,
             observations,
             truth: Some(truth),
+            truth_forcing: Some(truth_f),
         })
     }
+
+    /// The truth in control-vector form, where known: x0, followed by the truth's F when the forcing
+    /// is estimated.
+    pub fn truth_control(&self) -> Option<Vec<f64>> {
+        let mut t = self.truth.as_ref()?.first()?.clone();
+        if self.config.forcing_prior.is_some() {
+            t.push(self.truth_forcing.unwrap_or(self.config.model.forcing));
+        }
+        Some(t)
+    }
+}
+
+/// The truth trajectory over the window from x0 with forcing `f`; refuses a run that blows up.
+fn truth_run(config: &Lorenz96Config, x0: &[f64], f: f64) -> Result<Vec<Vec<f64>>> {
+    let model = Lorenz96Model {
+        forcing: f,
+        ..config.model
+    };
+    let truth = model.run(x0, config.window);
+    if let Some(k) = truth.iter().position(|x| x.iter().any(|v| !v.is_finite())) {
+        let drawn = match f == config.model.forcing {
+            true => String::new(),
+            false => format!(" (with the truth's forcing {f} drawn from its prior)"),
+        };
+        return Err(Error::Config(format!(
+            "settings dt={} and forcing={}: the truth run{drawn} blew up (non-finite state at step {k} \
+             of the window); use a smaller dt (0.05 is the standard step for forcing 8)",
+            model.dt, config.model.forcing
+        )));
+    }
+    Ok(truth)
+}
+
+/// Observations of h(truth) every `obs_every` steps at every `obs_stride`-th site, with N(0, σ_o²) noise.
+fn observe(config: &Lorenz96Config, truth: &[Vec<f64>], rng: &mut ChaCha8Rng) -> Vec<Observation> {
+    let mut observations = Vec::new();
+    let mut step = config.obs_every;
+    while step <= config.window {
+        for site in (0..config.model.n).step_by(config.obs_stride) {
+            let z: f64 = StandardNormal.sample(rng);
+            let value = config.obs_op.apply(truth[step][site]) + config.sigma_o * z;
+            observations.push(Observation {
+                step,
+                site,
+                value,
+                sigma: config.sigma_o,
+            });
+        }
+        step += config.obs_every;
+    }
+    observations
 }
