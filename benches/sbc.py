@@ -28,7 +28,7 @@ def parse_args():
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--varpost", required=True, help="the varpost binary (a release build)")
     p.add_argument("--work", required=True, help="folder for the replications' runs")
-    p.add_argument("--reps", type=int, default=100, help="replications per kernel")
+    p.add_argument("--reps", type=int, default=400, help="replications per kernel")
     p.add_argument("--kernels", default="hmc,mala,laplace-mh")
     p.add_argument("--draws", type=int, default=99, help="L: kept draws per replication")
     p.add_argument("--thin", type=int, default=10, help="keep one iteration in this many")
