@@ -29,6 +29,7 @@ def parse_args():
     p.add_argument("--varpost", required=True, help="the varpost binary (a release build)")
     p.add_argument("--work", required=True, help="folder for the replications' runs")
     p.add_argument("--reps", type=int, default=400, help="replications per kernel")
+    p.add_argument("--first-seed", type=int, default=0, help="replication r uses seed first-seed + r")
     p.add_argument("--kernels", default="hmc,mala,laplace-mh")
     p.add_argument("--draws", type=int, default=99, help="L: kept draws per replication")
     p.add_argument("--thin", type=int, default=10, help="keep one iteration in this many")
@@ -85,7 +86,7 @@ def replication(args, settings, kernel, r):
     scen = os.path.join(base, "scenario")
     if not os.path.exists(os.path.join(scen, "truth.csv")):
         cmd = [args.varpost, "synth", "--out", scen]
-        for s in settings + [f"seed={r}"]:
+        for s in settings + [f"seed={args.first_seed + r}"]:
             cmd += ["--set", s]
         run(cmd)
     out = os.path.join(base, kernel)
@@ -93,7 +94,7 @@ def replication(args, settings, kernel, r):
     code = run(
         [args.varpost, "sample", "--problem", "lorenz96", "--set", f"data={scen}",
          "--kernel", kernel, "--chains", "1", "--draws", str(args.draws), "--thin", str(args.thin),
-         "--warmup", str(args.warmup), "--seed", str(1000 + r), "--log-format", "none",
+         "--warmup", str(args.warmup), "--seed", str(1000 + args.first_seed + r), "--log-format", "none",
          "--out", out]
     )
     seconds = time.time() - start
@@ -160,7 +161,8 @@ def markdown(args, settings, names, results):
     lines = [
         f"Replications: {args.reps} per kernel; per replication 1 chain, {args.warmup} warm-up iterations, "
         f"L = {args.draws} draws kept with thinning {args.thin}; ranks binned into {args.bins} bins of "
-        f"{(args.draws + 1) // args.bins}; settings `{' '.join(settings)}` (plus `seed=r`).",
+        f"{(args.draws + 1) // args.bins}; settings `{' '.join(settings)}` (plus `seed=r`, "
+        f"r = {args.first_seed} … {args.first_seed + args.reps - 1}).",
         "",
         "| kernel | min p | " + " | ".join(f"p({n})" for n in names) + " | median (min) bulk ESS of the L draws | evaluations per replication | wall time |",
         "| --- | --- | " + " | ".join("---" for _ in names) + " | --- | --- | --- |",

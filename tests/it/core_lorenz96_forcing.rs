@@ -246,6 +246,9 @@ fn bad_forcing_settings_are_refused_with_their_key() {
         let e = refuse(&[("estimate_forcing", "true"), (key, value)]);
         assert!(e.contains(&format!("setting {key}=")), "{key}={value}: {e}");
     }
+    // A bad forcing is named as such, not as the prior mean it defaults.
+    let e = refuse(&[("estimate_forcing", "true"), ("forcing", "nan")]);
+    assert!(e.contains("setting forcing=NaN"), "{e}");
     let e = refuse(&[("forcing_prior_sd", "0.5")]);
     assert!(
         e.contains("forcing_prior_sd") && e.contains("estimate_forcing=true"),

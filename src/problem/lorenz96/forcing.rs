@@ -34,7 +34,8 @@ pub struct ForcingPrior {
 impl ForcingPrior {
     /// Reads `estimate_forcing` (true or false, default false), and with it `forcing_prior_mean`
     /// (default `forcing`) and `forcing_prior_sd` (default 1.0). Prior settings given without
-    /// `estimate_forcing=true` are refused: they would have no effect.
+    /// `estimate_forcing=true` are refused: they would have no effect. The values' ranges are checked
+    /// by [`ForcingPrior::validate`], which `Lorenz96Config::validate` calls.
     pub fn from_settings(s: &Settings, forcing: f64) -> Result<Option<Self>> {
         let estimate = match s.get_str("estimate_forcing").as_deref() {
             None | Some("false") => false,
@@ -57,9 +58,8 @@ impl ForcingPrior {
             }
             return Ok(None);
         }
-        let p = ForcingPrior { mean, sd };
-        p.validate()?;
-        Ok(Some(p))
+        // Ranges are checked by `Lorenz96Config::validate`, after `forcing` itself (the default mean).
+        Ok(Some(ForcingPrior { mean, sd }))
     }
 
     /// Checks that the mean is a finite number in the range the `forcing` setting allows and the
