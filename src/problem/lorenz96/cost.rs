@@ -76,18 +76,18 @@ impl Lorenz96 {
         let jb = 0.5 * dxb.iter().zip(&binv_d).map(|(a, b)| a * b).sum::<f64>();
         let traj = model.run(x, config.window);
         let mut jo = 0.0;
-        // forcing[k] = ∂Jo/∂x_k
-        let mut forcing = vec![vec![0.0; n]; traj.len()];
+        // The adjoint forcing (not the model's F): src[k] = ∂Jo/∂x_k.
+        let mut src = vec![vec![0.0; n]; traj.len()];
         for (k, obs) in self.obs_at.iter().enumerate() {
             for &(site, y, w) in obs {
                 let xs = traj[k][site];
                 let d = y - op.apply(xs);
                 jo += 0.5 * w * d * d;
-                forcing[k][site] -= w * d * op.derivative(xs);
+                src[k][site] -= w * d * op.derivative(xs);
             }
         }
         if let Some(g) = grad {
-            let (a, af) = self.adjoint(&model, &traj, &forcing);
+            let (a, af) = self.adjoint(&model, &traj, &src);
             for i in 0..n {
                 g[i] = binv_d[i] + a[i];
             }
@@ -107,11 +107,11 @@ impl Lorenz96 {
         &self,
         model: &Lorenz96Model,
         traj: &[Vec<f64>],
-        forcing: &[Vec<f64>],
+        src: &[Vec<f64>],
     ) -> (Vec<f64>, f64) {
         let n = model.n;
         let with_f = self.scenario.config.forcing_prior.is_some();
-        let mut a = forcing[traj.len() - 1].clone();
+        let mut a = src[traj.len() - 1].clone();
         let mut af = 0.0;
         for k in (0..traj.len() - 1).rev() {
             a = match with_f {
@@ -123,7 +123,7 @@ impl Lorenz96 {
                 false => model.step_adj(&traj[k], &a),
             };
             for i in 0..n {
-                a[i] += forcing[k][i];
+                a[i] += src[k][i];
             }
         }
         (a, af)
