@@ -192,7 +192,8 @@ def markdown(args, settings, names, results):
     lines += [
         "",
         "Failed replications (not in the ranks): "
-        + "; ".join(f"{kk}: {len(r['failed_seeds'])} {r['failed_seeds'] or ''}" for kk, r in results.items())
+        + ", ".join(f"{kk} {len(r['failed_seeds'])}" + (f" (seeds {r['failed_seeds']})" if r["failed_seeds"] else "")
+                    for kk, r in results.items())
         + ".",
         "",
         f"{k} tests in all: at a level of 0.01 each, about {0.01 * k:.2f} of them would fall below it by "
