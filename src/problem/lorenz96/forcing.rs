@@ -40,10 +40,12 @@ impl ForcingPrior {
         let estimate = match s.get_str("estimate_forcing").as_deref() {
             None | Some("false") => false,
             Some("true") => true,
-            Some(o) => return Err(Error::Config(format!(
+            Some(o) => {
+                return Err(Error::Config(format!(
                 "setting estimate_forcing={o}: use 'true' (estimate the forcing F together with \
                      the initial state) or 'false' (F fixed at the setting forcing)"
-            ))),
+            )))
+            }
         };
         let mean = s.get("forcing_prior_mean", forcing)?;
         let sd = s.get("forcing_prior_sd", DEFAULT_FORCING_PRIOR_SD)?;
