@@ -310,7 +310,10 @@ fn sampling_with_the_forcing_estimated_recovers_the_truths_forcing() {
     for s in &sets {
         sargs.extend(["--set", s]);
     }
-    assert!(run(&sargs).status.success());
+    let so = run(&sargs);
+    assert!(so.status.success());
+    let said = String::from_utf8_lossy(&so.stdout);
+    assert!(said.contains("the truth's forcing F = 8"), "{said}");
     let truth_f = read_json(&sy.join("scenario.json"))["truth_forcing"]
         .as_f64()
         .unwrap();
