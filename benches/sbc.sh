@@ -4,7 +4,8 @@
 # release, runs benches/sbc.py (replications of synth=calibration + sample, ranks of the truth, chi-square
 # uniformity tests with scipy) and replaces the "Calibration" section of BENCHMARKS.md with its table.
 # Not part of `cargo test`. Extra arguments go to benches/sbc.py (e.g. --reps 20 for a quick look; the
-# section is then not written). About 10 minutes on 2 shared cores with the defaults (400 replications).
+# section is then not written). About 5 minutes on 2 shared cores with the defaults (400 replications per
+# kernel), plus the release build.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
