@@ -1,5 +1,7 @@
 //! `synth`: a synthetic scenario of a built-in problem written to a folder, to be read back with
-//! `--set data=DIR`.
+//! `--set data=DIR`. With `--set synth=calibration` the truth is a draw from the prior the cost assumes
+//! (x0 from N(xb, B), and F from its prior when `estimate_forcing=true`), observations are drawn from
+//! it with noise from R: repeated over seeds, a simulation-based calibration study (benches/sbc.sh).
 
 use std::path::Path;
 
@@ -23,5 +25,8 @@ pub fn synth(problem: &str, set: &[String], out: &Path) -> Result<ExitCode> {
         "wrote scenario.json, background.csv, observations.csv, truth.csv to {}",
         out.display()
     );
+    if let (Some(_), Some(f)) = (sc.config.forcing_prior, sc.truth_forcing) {
+        println!("the truth's forcing F = {f} (scenario.json: truth_forcing)");
+    }
     Ok(ExitCode::Success)
 }

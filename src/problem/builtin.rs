@@ -59,7 +59,7 @@ pub fn open(name: &str, settings: &Settings) -> Result<Builtin> {
                 None => Scenario::synthesize(&Lorenz96Config::from_settings(settings)?)?,
             };
             settings.finish(name)?;
-            let truth = scenario.truth.as_ref().map(|t| t[0].clone());
+            let truth = scenario.truth_control();
             let description = lorenz96::describe(&scenario.config);
             let settings = serde_json::to_value(&scenario.config).unwrap_or_default();
             Ok(Builtin {

@@ -17,6 +17,7 @@ mod config_compat;
 mod core_burgers;
 mod core_linear_gaussian;
 mod core_lorenz96;
+mod core_lorenz96_forcing;
 mod diagnostics_arviz;
 mod laplace;
 mod output_files;
