@@ -38,5 +38,10 @@ git diff --quiet HEAD -- . ':!BENCHMARKS.md' || dirty=" (with uncommitted change
   echo "## Results"
   echo
   cat "$tmp"
-} > BENCHMARKS.md
+  # Sections written by the other benchmark scripts (fuzzing, calibration, the default sampler) stay.
+  if [ -f BENCHMARKS.md ]; then
+    awk '/^## /{keep = ($0 != "## Results" && $0 != "## Targets")} keep' BENCHMARKS.md | sed '1s/^/\n/'
+  fi
+} > BENCHMARKS.md.new
+mv BENCHMARKS.md.new BENCHMARKS.md
 echo "== wrote BENCHMARKS.md" >&2
