@@ -28,6 +28,7 @@ fn ensemble_case(dir: &std::path::Path, members: usize, n: usize) -> bool {
             chain: k % 4,
             draw: k / 4,
             state: (0..n).map(|i| (k * n + i) as f64 * 1e-3).collect(),
+            weight: None,
         })
     });
     let t0 = Instant::now();

@@ -9,7 +9,7 @@
 //!    window, pooled over all chains in chain order, give a new metric ([`super::pooled`]); every
 //!    chain restarts dual averaging from the pooled step size, the geometric mean of the chains'
 //!    averaged step sizes;
-//! 3. a final stretch of 10 % of W (at least 10 iterations) adapts the step size for the last
+//! 3. a final stretch of 15 % of W (at least 20 iterations) adapts the step size for the last
 //!    metric; at its end every chain samples with the pooled step size. (A shorter stretch leaves
 //!    dual averaging's averaged step size short of its limit: the acceptance while sampling then
 //!    overshoots the target.)
@@ -242,11 +242,11 @@ mod tests {
     fn schedule_of_a_thousand_iterations() {
         let p = WarmupPlan::new(1000, 3);
         assert_eq!(p.start, 75);
-        assert_eq!(p.windows, vec![125, 225, 425, 900]);
-        assert_eq!((p.tail, p.end), (100, 1000));
+        assert_eq!(p.windows, vec![125, 225, 425, 850]);
+        assert_eq!((p.tail, p.end), (150, 1000));
         assert!(!p.collects(75) && p.collects(76) && p.collects(125));
         assert_eq!(p.next_barrier(0), Some(125));
-        assert_eq!(p.next_barrier(900), Some(1000));
+        assert_eq!(p.next_barrier(850), Some(1000));
     }
 
     #[test]
@@ -269,9 +269,9 @@ mod tests {
         assert_eq!(p.end, 1000);
         let step = p.close_window(225, &refs, &[0.55, 0.5]);
         assert!((step - (0.55f64 * 0.5).sqrt()).abs() < 1e-15);
-        assert_eq!((p.settled, p.end), (Some(225), 325));
+        assert_eq!((p.settled, p.end), (Some(225), 375));
         assert!(p.windows.is_empty());
-        assert_eq!(p.next_barrier(225), Some(325));
+        assert_eq!(p.next_barrier(225), Some(375));
         assert!(p.check(1000, 1).is_ok());
         assert!(p.check(999, 1).is_err());
     }
@@ -286,7 +286,7 @@ mod tests {
         p.close_window(125, &[&narrow], &[0.5]);
         p.close_window(225, &[&wide], &[0.5]);
         assert_eq!((p.settled, p.end), (None, 1000));
-        assert_eq!(p.windows, vec![425, 900]);
+        assert_eq!(p.windows, vec![425, 850]);
     }
 
     #[test]

@@ -6,6 +6,7 @@
 //! dimensions:  member = UNLIMITED, component = n, name_strlen = longest name (only with names)
 //! variables:   double state(member, component)       the ensemble members
 //!              int    chain(member), draw(member)     where each member comes from
+//!              double weight(member)                  normalised weight (weighted ensembles only)
 //!              double analysis(component)             the MAP
 //!              double background(component), posterior_mean(component), posterior_variance(component),
 //!                     laplace_variance(component), background_variance(component)   where known
@@ -115,6 +116,8 @@ pub struct Member {
     pub draw: usize,
     /// The state, one value per component.
     pub state: Vec<f64>,
+    /// The member's normalised weight, for a weighted ensemble ([`EnsembleInfo::weighted`]).
+    pub weight: Option<f64>,
 }
 
 /// Everything in ensemble.nc except the members themselves.
@@ -136,6 +139,9 @@ pub struct EnsembleInfo<'a> {
     pub posterior_mean: Option<&'a [f64]>,
     pub posterior_variance: Option<&'a [f64]>,
     pub laplace_variance: Option<&'a [f64]>,
+    /// Whether the members carry weights (importance sampling): the file then has a `weight`
+    /// variable, and every member must give its weight.
+    pub weighted: bool,
 }
 
 /// The per-component vectors of the file: variable name, long_name, whether its units are squared.
@@ -295,6 +301,15 @@ fn define(
         "long_name",
         "index of the draw within its chain (after warm-up)",
     )?;
+    if info.weighted {
+        ds.add_var_f64("weight", &["member"])?;
+        ds.add_var_attr_string(
+            "weight",
+            "long_name",
+            "normalised importance weight of the member (the weights sum to 1)",
+        )?;
+        ds.add_var_attr_string("weight", "units", "1")?;
+    }
     for (name, long, squared, _) in component_vectors(info) {
         ds.add_var_f64(name, &["component"])?;
         ds.add_var_attr_string(name, "long_name", long)?;
@@ -375,6 +390,41 @@ fn write_file<I>(
 where
     I: IntoIterator<Item = Result<Member>>,
 {
+    let (shared, data_start) = write_header_and_fixed(tmp, ds, info, names)?;
+    let mut out = shared.0.borrow_mut();
+    out.seek(SeekFrom::Start(data_start))
+        .map_err(|e| Error::io(tmp, e))?;
+    let record_size = ds.record_size().unwrap_or(0);
+    let mut record = Vec::with_capacity(record_size);
+    let mut count = 0usize;
+    for m in members {
+        let m = m?;
+        if count >= n_members {
+            return Err(Error::Config(format!(
+                "more ensemble members than the {n_members} announced"
+            )));
+        }
+        encode_record(&m, count, info, &mut record)?;
+        out.write_all(&record).map_err(|e| Error::io(tmp, e))?;
+        count += 1;
+    }
+    if count != n_members {
+        return Err(Error::Config(format!(
+            "{count} ensemble members given, {n_members} announced"
+        )));
+    }
+    out.flush().map_err(|e| Error::io(tmp, e))?;
+    out.get_ref().sync_all().map_err(|e| Error::io(tmp, e))
+}
+
+/// Writes the header and the fixed-size variables of `ds` into `tmp` through the netcdf3 writer;
+/// returns the file and where the records start.
+fn write_header_and_fixed(
+    tmp: &Path,
+    ds: &DataSet,
+    info: &EnsembleInfo<'_>,
+    names: Option<&StoredNames>,
+) -> Result<(SharedFile, u64)> {
     let n = info.analysis.len();
     let nc = |e: WriteError| Error::format(tmp, format!("cannot write NetCDF: {}", describe(e)));
     let file = File::create(tmp).map_err(|e| Error::io(tmp, e))?;
@@ -399,7 +449,6 @@ where
         .borrow_mut()
         .stream_position()
         .map_err(|e| Error::io(tmp, e))?;
-
     for (name, _, _, data) in component_vectors(info) {
         w.write_var_f64(name, data).map_err(nc)?;
     }
@@ -411,79 +460,90 @@ where
         }
         w.write_var_u8("component_name", &chars).map_err(nc)?;
     }
-
-    // The records are written here, not by the netcdf3 writer: it keeps a set of the records written
-    // per variable and merges each new record into it, which is quadratic in the member count (tens
-    // of seconds for 20 000 members). The layout is the one its header announces (Unidata, "The
-    // NetCDF Classic Format Specification"): after the header and the fixed-size variables, record
-    // after record, each holding the record variables in definition order, each padded to 4 bytes.
+    check_record_layout(ds, n, info.weighted)?;
+    // The fixed-size variables are complete; nothing is left for the writer to fill in, and its
+    // closing fill would overwrite the records written afterwards.
+    drop(w);
     let fixed: usize = ds
         .get_vars()
         .iter()
         .filter(|v| !v.is_record_var())
         .map(|v| v.chunk_size())
         .sum();
+    Ok((shared, header_size + fixed as u64))
+}
+
+/// The records are written by [`write_file`], not by the netcdf3 writer: it keeps a set of the records
+/// written per variable and merges each new record into it, which is quadratic in the member count
+/// (tens of seconds for 20 000 members). The layout is the one its header announces (Unidata, "The
+/// NetCDF Classic Format Specification"): after the header and the fixed-size variables, record after
+/// record, each holding the record variables in definition order, each padded to 4 bytes. This checks
+/// that the header announces the layout [`encode_record`] writes.
+fn check_record_layout(ds: &DataSet, n: usize, weighted: bool) -> Result<()> {
     let record_vars: Vec<(&str, usize)> = ds
         .get_vars()
         .into_iter()
         .filter(|v| v.is_record_var())
         .map(|v| (v.name(), v.chunk_size()))
         .collect();
-    if record_vars != [("state", 8 * n), ("chain", 4), ("draw", 4)]
-        || ds.record_size() != Some(8 * n + 8)
-    {
+    let mut want = vec![("state", 8 * n), ("chain", 4), ("draw", 4)];
+    if weighted {
+        want.push(("weight", 8));
+    }
+    let size: usize = want.iter().map(|v| v.1).sum();
+    if record_vars != want || ds.record_size() != Some(size) {
         return Err(Error::Numerical(format!(
             "unexpected NetCDF record layout {record_vars:?}; please report this"
         )));
     }
-    // The fixed-size variables are complete; nothing is left for the writer to fill in, and its
-    // closing fill would overwrite the records written below.
-    drop(w);
+    Ok(())
+}
 
-    let mut out = shared.0.borrow_mut();
-    out.seek(SeekFrom::Start(header_size + fixed as u64))
-        .map_err(|e| Error::io(tmp, e))?;
-    let mut record = Vec::with_capacity(8 * n + 8);
-    let mut count = 0usize;
-    for m in members {
-        let m = m?;
-        if count >= n_members {
-            return Err(Error::Config(format!(
-                "more ensemble members than the {n_members} announced"
-            )));
-        }
-        if m.state.len() != n {
-            return Err(Error::Config(format!(
-                "ensemble member {count} (chain {}, draw {}) has {} components, expected {n}",
-                m.chain,
-                m.draw,
-                m.state.len()
-            )));
-        }
-        let index = |v: usize, what: &str| {
-            i32::try_from(v).map_err(|_| {
-                Error::Config(format!(
-                    "{what} index {v} of ensemble member {count} does not fit a NetCDF int"
-                ))
-            })
-        };
-        let (chain, draw) = (index(m.chain, "chain")?, index(m.draw, "draw")?);
-        record.clear();
-        for x in &m.state {
-            record.extend_from_slice(&x.to_be_bytes());
-        }
-        record.extend_from_slice(&chain.to_be_bytes());
-        record.extend_from_slice(&draw.to_be_bytes());
-        out.write_all(&record).map_err(|e| Error::io(tmp, e))?;
-        count += 1;
-    }
-    if count != n_members {
+/// One record (member number `count`) in the file's big-endian layout, into `record`.
+fn encode_record(
+    m: &Member,
+    count: usize,
+    info: &EnsembleInfo<'_>,
+    record: &mut Vec<u8>,
+) -> Result<()> {
+    let n = info.analysis.len();
+    if m.state.len() != n {
         return Err(Error::Config(format!(
-            "{count} ensemble members given, {n_members} announced"
+            "ensemble member {count} (chain {}, draw {}) has {} components, expected {n}",
+            m.chain,
+            m.draw,
+            m.state.len()
         )));
     }
-    out.flush().map_err(|e| Error::io(tmp, e))?;
-    out.get_ref().sync_all().map_err(|e| Error::io(tmp, e))
+    let index = |v: usize, what: &str| {
+        i32::try_from(v).map_err(|_| {
+            Error::Config(format!(
+                "{what} index {v} of ensemble member {count} does not fit a NetCDF int"
+            ))
+        })
+    };
+    let (chain, draw) = (index(m.chain, "chain")?, index(m.draw, "draw")?);
+    record.clear();
+    for x in &m.state {
+        record.extend_from_slice(&x.to_be_bytes());
+    }
+    record.extend_from_slice(&chain.to_be_bytes());
+    record.extend_from_slice(&draw.to_be_bytes());
+    match (info.weighted, m.weight) {
+        (true, Some(w)) => record.extend_from_slice(&w.to_be_bytes()),
+        (false, None) => {}
+        (true, None) => {
+            return Err(Error::Config(format!(
+                "ensemble member {count} of a weighted ensemble has no weight"
+            )))
+        }
+        (false, Some(_)) => {
+            return Err(Error::Config(format!(
+                "ensemble member {count} has a weight but the ensemble is not weighted"
+            )))
+        }
+    }
+    Ok(())
 }
 
 #[cfg(test)]

@@ -23,7 +23,7 @@ use crate::output::summary::CAUTION;
 use crate::output::table::{write_components, ComponentTable};
 use crate::output::{worst_first, Summary};
 use crate::sampler::draws::FLAG_DIVERGENT;
-use crate::sampler::{ChainDraws, Checkpoint, Ensemble};
+use crate::sampler::{ChainDraws, Checkpoint, Ensemble, WeightedDraws};
 
 /// What the report found and wrote.
 pub struct ReportOutcome {
@@ -46,7 +46,7 @@ const LAGS: usize = 60;
 /// Everything the report is written from.
 struct ReportData {
     summary: Summary,
-    draws: ChainDraws,
+    draws: Ensemble,
     kernel: String,
     stats: Vec<ComponentStats>,
     verdict: Verdict,
@@ -59,7 +59,7 @@ struct ReportData {
 impl ReportData {
     fn new(
         summary: Summary,
-        draws: ChainDraws,
+        draws: Ensemble,
         kernel: String,
         stats: Vec<ComponentStats>,
         verdict: Verdict,
@@ -115,7 +115,7 @@ pub fn run_report(dir: &Path, command_line: &str) -> Result<ReportOutcome> {
     let verdict = verdict_from_disk(dir, &run, &summary, &draws, &stats)?;
     let data = ReportData::new(
         summary,
-        draws,
+        Ensemble::Chains(draws),
         run.sampler.kernel.name().into(),
         stats,
         verdict,
@@ -221,6 +221,35 @@ fn run_progress(
     })
 }
 
+/// Writes the report files of a weighted ensemble `draws` (importance sampling) with its diagnostics
+/// `stats` and `verdict` into `dir`: components.csv, ensemble.nc with a `weight` variable, the
+/// marginal and spread plots and report.html. `method` names the sampler in the report.
+pub fn report_weighted(
+    dir: &Path,
+    summary: Summary,
+    draws: WeightedDraws,
+    method: &str,
+    stats: Vec<ComponentStats>,
+    verdict: Verdict,
+    command_line: &str,
+) -> Result<ReportOutcome> {
+    if draws.dim() != summary.dim {
+        return Err(crate::error::Error::Data(format!(
+            "the weighted draws have {} components but the run has dimension {}",
+            draws.dim(),
+            summary.dim
+        )));
+    }
+    let data = ReportData::new(
+        summary,
+        Ensemble::Weighted(draws),
+        method.into(),
+        stats,
+        verdict,
+    );
+    write_all(dir, &data, command_line)
+}
+
 /// Writes the report files of a sampling run that just ended, from its own diagnostics.
 pub fn report_after_sample(
     dir: &Path,
@@ -230,7 +259,7 @@ pub fn report_after_sample(
     let chains = outcome.result.chains.len();
     let data = ReportData::new(
         outcome.summary.clone(),
-        ChainDraws::open(dir, chains)?,
+        Ensemble::Chains(ChainDraws::open(dir, chains)?),
         outcome.result.kernel.into(),
         outcome.diagnosis.stats.clone(),
         outcome.diagnosis.verdict.clone(),
@@ -259,7 +288,10 @@ fn write_all(dir: &Path, d: &ReportData, command_line: &str) -> Result<ReportOut
         order,
         laplace_std: d.laplace_std.clone(),
         html,
-        draws_per_chain: d.draws.len,
+        draws_per_chain: match &d.draws {
+            Ensemble::Chains(c) => c.len,
+            Ensemble::Weighted(w) => w.x.len(),
+        },
     })
 }
 
@@ -280,48 +312,71 @@ fn write_netcdf(dir: &Path, d: &ReportData, command_line: &str) -> Result<()> {
         posterior_mean: Some(&pmean),
         posterior_variance: Some(&pvar),
         laplace_variance: laplace_var.as_deref(),
+        weighted: false,
     };
-    let len = d.draws.len;
+    let chains = match &d.draws {
+        Ensemble::Chains(c) => c,
+        Ensemble::Weighted(w) => {
+            let info = EnsembleInfo {
+                weighted: true,
+                ..info
+            };
+            let weights = w.normalized_weights();
+            let members = w.x.iter().zip(weights).enumerate().map(|(i, (x, wi))| {
+                Ok(Member {
+                    chain: 0,
+                    draw: i,
+                    state: x.clone(),
+                    weight: Some(wi),
+                })
+            });
+            write_ensemble(dir, &info, w.x.len(), members)?;
+            return Ok(());
+        }
+    };
+    let len = chains.len;
     let mut streams = Vec::new();
-    for (c, f) in d.draws.files().iter().enumerate() {
+    for (c, f) in chains.files().iter().enumerate() {
         let records = f.iter()?.take(len).enumerate();
         streams.push(records.map(move |(i, r)| {
             r.map(|r| Member {
                 chain: c,
                 draw: i,
                 state: r.x,
+                weight: None,
             })
         }));
     }
     write_ensemble(
         dir,
         &info,
-        len * d.draws.chains(),
+        len * chains.chains(),
         streams.into_iter().flatten(),
     )?;
     Ok(())
 }
 
 /// Trace, autocorrelation and marginal plots of the least-converged components, and the standard
-/// deviations of every component.
+/// deviations of every component. A weighted ensemble has no chains to trace: its marginals are drawn
+/// from the weighted draws resampled, and the trace and autocorrelation plots are left out.
 fn write_plots(dir: &Path, d: &ReportData, order: &[usize]) -> Result<()> {
     let top: Vec<usize> = order
         .iter()
         .copied()
         .take(PLOTTED.min(d.names.len()))
         .collect();
-    let per_chain = d.draws.components(&top)?;
-    let comp: Vec<Vec<Vec<f64>>> = (0..top.len())
-        .map(|j| per_chain.iter().map(|c| c[j].clone()).collect())
-        .collect();
+    let comp = plotted_series(d, &top)?;
     let labels: Vec<String> = top
         .iter()
         .map(|&i| {
             let s = &d.stats[i];
-            format!(
-                "{} (R-hat {:.3}, bulk ESS {:.0})",
-                d.names[i], s.rhat, s.ess_bulk
-            )
+            match d.draws {
+                Ensemble::Chains(_) => format!(
+                    "{} (R-hat {:.3}, bulk ESS {:.0})",
+                    d.names[i], s.rhat, s.ess_bulk
+                ),
+                Ensemble::Weighted(_) => format!("{} (ESS {:.0})", d.names[i], s.ess_bulk),
+            }
         })
         .collect();
     let cs: Vec<ChainSeries> = labels
@@ -332,24 +387,9 @@ fn write_plots(dir: &Path, d: &ReportData, order: &[usize]) -> Result<()> {
             chains: c,
         })
         .collect();
-    trace_plot(&dir.join("trace.png"), &cs)?;
-    let acf: Vec<Vec<Vec<f64>>> = comp
-        .iter()
-        .map(|ch| {
-            ch.iter()
-                .map(|c| autocorrelation(c).into_iter().take(LAGS).collect())
-                .collect()
-        })
-        .collect();
-    let acs: Vec<ChainSeries> = labels
-        .iter()
-        .zip(&acf)
-        .map(|(l, c)| ChainSeries {
-            label: l,
-            chains: c,
-        })
-        .collect();
-    autocorrelation_plot(&dir.join("autocorrelation.png"), &acs)?;
+    if matches!(d.draws, Ensemble::Chains(_)) {
+        chain_plots(dir, &labels, &cs, &comp)?;
+    }
     let marginals: Vec<Marginal> = cs
         .iter()
         .zip(&top)
@@ -371,6 +411,73 @@ fn write_plots(dir: &Path, d: &ReportData, order: &[usize]) -> Result<()> {
         d.background_std.as_deref(),
     )?;
     Ok(())
+}
+
+/// The values of components `top`, per component a list of series: one per chain, or the one series of
+/// the weighted draws resampled (equally weighted).
+fn plotted_series(d: &ReportData, top: &[usize]) -> Result<Vec<Vec<Vec<f64>>>> {
+    Ok(match &d.draws {
+        Ensemble::Chains(c) => {
+            let per_chain = c.components(top)?;
+            (0..top.len())
+                .map(|j| per_chain.iter().map(|c| c[j].clone()).collect())
+                .collect()
+        }
+        Ensemble::Weighted(w) => {
+            let picks = systematic_resample(&w.normalized_weights());
+            top.iter()
+                .map(|&i| vec![picks.iter().map(|&k| w.x[k][i]).collect()])
+                .collect()
+        }
+    })
+}
+
+/// trace.png and autocorrelation.png of chains.
+fn chain_plots(
+    dir: &Path,
+    labels: &[String],
+    cs: &[ChainSeries<'_>],
+    comp: &[Vec<Vec<f64>>],
+) -> Result<()> {
+    trace_plot(&dir.join("trace.png"), cs)?;
+    let acf: Vec<Vec<Vec<f64>>> = comp
+        .iter()
+        .map(|ch| {
+            ch.iter()
+                .map(|c| autocorrelation(c).into_iter().take(LAGS).collect())
+                .collect()
+        })
+        .collect();
+    let acs: Vec<ChainSeries> = labels
+        .iter()
+        .zip(&acf)
+        .map(|(l, c)| ChainSeries {
+            label: l,
+            chains: c,
+        })
+        .collect();
+    autocorrelation_plot(&dir.join("autocorrelation.png"), &acs)?;
+    Ok(())
+}
+
+/// Indices of draws picked by systematic resampling of normalised `weights` (Douc, Cappé & Moulines
+/// 2005, "Comparison of resampling schemes for particle filtering"), as many as there are weights,
+/// with the fixed offset 1/2 so that the report is the same on every run: draw k is picked
+/// floor(M w_k) or ceil(M w_k) times.
+fn systematic_resample(weights: &[f64]) -> Vec<usize> {
+    let m = weights.len();
+    let mut picks = Vec::with_capacity(m);
+    let mut cum = 0.0;
+    let mut k = 0;
+    for j in 0..m {
+        let u = (j as f64 + 0.5) / m as f64;
+        while k < m && cum + weights[k] <= u {
+            cum += weights[k];
+            k += 1;
+        }
+        picks.push(k.min(m - 1));
+    }
+    picks
 }
 
 /// report.html.
@@ -399,6 +506,12 @@ fn write_html(
         ),
     ]
     .map(|(file, caption)| Figure { file, caption });
+    // A weighted ensemble has no chains to trace (see write_plots).
+    let chains = matches!(d.draws, Ensemble::Chains(_));
+    let figures: Vec<Figure> = figures
+        .into_iter()
+        .filter(|f| chains || (f.file != "trace.png" && f.file != "autocorrelation.png"))
+        .collect();
     let metadata = report_metadata(d);
     let text: Vec<&str> = d
         .verdict
@@ -432,15 +545,21 @@ fn report_metadata(d: &ReportData) -> Vec<(String, String)> {
     let s = &d.summary;
     let mut metadata = vec![
         ("problem".to_string(), s.description.clone()),
-        (
-            "chains".to_string(),
-            format!(
-                "{} chains x {} draws ({} kernel)",
-                d.draws.chains(),
-                d.draws.len,
-                d.kernel
+        match &d.draws {
+            Ensemble::Chains(c) => (
+                "chains".to_string(),
+                format!(
+                    "{} chains x {} draws ({} kernel)",
+                    c.chains(),
+                    c.len,
+                    d.kernel
+                ),
             ),
-        ),
+            Ensemble::Weighted(w) => (
+                "ensemble".to_string(),
+                format!("{} weighted draws ({})", w.x.len(), d.kernel),
+            ),
+        },
         (
             "evaluations".to_string(),
             format!("{} model runs", s.evaluations.model_runs()),

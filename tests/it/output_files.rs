@@ -149,6 +149,7 @@ fn ensemble_round_trip_through_netcdf4_and_scipy() {
             chain: k / draws,
             draw: k % draws + 1000,
             state: test_vector(n, k as f64 + 0.5),
+            weight: None,
         })
         .collect();
     let info = EnsembleInfo {
@@ -162,6 +163,7 @@ fn ensemble_round_trip_through_netcdf4_and_scipy() {
         posterior_mean: Some(&pmean),
         posterior_variance: Some(&pvar),
         laplace_variance: Some(&lvar),
+        weighted: false,
     };
     let path = write_ensemble(&dir, &info, members.len(), members.iter().cloned().map(Ok)).unwrap();
     assert_eq!(path, dir.join("ensemble.nc"));
@@ -313,6 +315,7 @@ fn bad_members_give_clear_errors_and_leave_no_file() {
         chain: 0,
         draw: 0,
         state: vec![1.0; len],
+        weight: None,
     };
     let e = write_ensemble(&dir, &info, 2, [Ok(member(3)), Ok(member(2))]).unwrap_err();
     assert!(
@@ -346,6 +349,7 @@ fn bad_members_give_clear_errors_and_leave_no_file() {
     let bad = EnsembleInfo {
         background_variance: Some(&bvar),
         ..info.clone()
+        weighted: false,
     };
     let e = write_ensemble(&dir, &bad, 0, std::iter::empty()).unwrap_err();
     assert!(
@@ -811,4 +815,60 @@ fn lock_is_refused_while_a_child_holds_it_and_taken_over_once_killed() {
     assert!(lock.takeover_note().unwrap().contains("no longer running"));
     drop(lock);
     std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A weighted ensemble goes through the report's weighted branch: ensemble.nc carries the normalised
+/// weights (read back with netCDF4, the general-purpose reference reader), components.csv the
+/// self-normalised weighted moments (closed form below), and the report leaves out the plots that
+/// need chains.
+#[test]
+fn weighted_ensemble_report_writes_weights_and_weighted_moments() {
+    use varpost::diagnostics::{weighted_component_stats, RunFacts, Verdict};
+    use varpost::output::summary::MapSummary;
+    use varpost::output::Summary;
+    use varpost::pipeline::report::report_weighted;
+    use varpost::sampler::WeightedDraws;
+
+    let dir = common::temp_dir("weighted-report");
+    // Weights proportional to 1, 1, 2, 4: normalised 1/8, 1/8, 1/4, 1/2 (closed form).
+    let x = vec![vec![0.0, 1.0], vec![1.0, 1.0], vec![2.0, 3.0], vec![3.0, 5.0]];
+    let w = WeightedDraws::new(x, vec![0.0, 0.0, 2f64.ln(), 4f64.ln()]).unwrap();
+    let weights = w.normalized_weights();
+    let stats: Vec<ComponentStats> = (0..2)
+        .map(|i| weighted_component_stats(&w.component(i), &weights).unwrap())
+        .collect();
+    // Weighted mean of component 0: 0/8 + 1/8 + 2/4 + 3/2 = 2.125 (closed form).
+    assert!((stats[0].mean - 2.125).abs() < 1e-12, "{}", stats[0].mean);
+    let verdict = Verdict::judge(&stats, 1, &RunFacts::default());
+    let summary = Summary {
+        dim: 2,
+        problem: "toy".into(),
+        description: "two components".into(),
+        map: Some(MapSummary {
+            cost: 0.0,
+            cost_start: 1.0,
+            cost_background: None,
+            cost_observation: None,
+            grad_norm: 0.0,
+            grad_norm_start: 1.0,
+            iterations: 1,
+            converged: true,
+            reason: "test".into(),
+            whitened: false,
+            x: vec![1.5, 2.0],
+        }),
+        ..Default::default()
+    };
+    let out = report_weighted(&dir, summary, w, "importance", stats, verdict, "test").unwrap();
+    assert!(out.html.exists());
+    assert!(dir.join("marginals.png").exists() && dir.join("std.png").exists());
+    assert!(!dir.join("trace.png").exists() && !dir.join("autocorrelation.png").exists());
+    let html = std::fs::read_to_string(&out.html).unwrap();
+    assert!(html.contains("4 weighted draws") && !html.contains("trace.png"));
+    let got = run_python(NC_READER, &[&dir.join("ensemble.nc")]);
+    let v = &got["netCDF4"]["vars"]["weight"];
+    assert_eq!(f64s(&v["data"]), vec![0.125, 0.125, 0.25, 0.5]);
+    assert_eq!(strs(&v["dims"]), vec!["member"]);
+    let csv = std::fs::read_to_string(dir.join("components.csv")).unwrap();
+    assert!(csv.contains("2.125"), "{csv}");
 }
