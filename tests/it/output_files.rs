@@ -349,7 +349,6 @@ fn bad_members_give_clear_errors_and_leave_no_file() {
     let bad = EnsembleInfo {
         background_variance: Some(&bvar),
         ..info.clone()
-        weighted: false,
     };
     let e = write_ensemble(&dir, &bad, 0, std::iter::empty()).unwrap_err();
     assert!(
@@ -831,7 +830,12 @@ fn weighted_ensemble_report_writes_weights_and_weighted_moments() {
 
     let dir = common::temp_dir("weighted-report");
     // Weights proportional to 1, 1, 2, 4: normalised 1/8, 1/8, 1/4, 1/2 (closed form).
-    let x = vec![vec![0.0, 1.0], vec![1.0, 1.0], vec![2.0, 3.0], vec![3.0, 5.0]];
+    let x = vec![
+        vec![0.0, 1.0],
+        vec![1.0, 1.0],
+        vec![2.0, 3.0],
+        vec![3.0, 5.0],
+    ];
     let w = WeightedDraws::new(x, vec![0.0, 0.0, 2f64.ln(), 4f64.ln()]).unwrap();
     let weights = w.normalized_weights();
     let stats: Vec<ComponentStats> = (0..2)
