@@ -51,7 +51,10 @@ fn sample_summary_schema() {
         "sample",
         "--problem",
         "linear-gaussian",
-        // Enough draws for the chains to pass their checks, so that every verdict field is filled.
+        // HMC, so that step sizes, E-BFMI and the pooled warm-up's fields are filled; enough draws for
+        // the chains to pass their checks, so that every verdict field is filled.
+        "--kernel",
+        "hmc",
         "--draws",
         "1000",
         "--warmup",
