@@ -2,18 +2,17 @@
 
 use std::path::Path;
 
-use super::assemble::check_summary;
 use super::load::{load, Loaded};
 use super::report::{report_after_sample, ReportOutcome};
 use super::sample::{run_sample, SampleOutcome};
 use crate::config::{ProblemSource, RunConfig};
 use crate::error::{Error, Result};
+use crate::output::summary::CheckSummary;
 use crate::output::Summary;
-use crate::problem::check::{gradient_test, GradientReport};
 
 /// What the demo found, for printing.
 pub struct DemoReport {
-    pub check: GradientReport,
+    pub check: CheckSummary,
     pub sample: SampleOutcome,
     pub report: ReportOutcome,
     /// Root-mean-square error against the truth of the background and of the analysis.
@@ -31,19 +30,18 @@ pub fn run_demo(out: &Path, progress: &dyn crate::sampler::Progress) -> Result<D
     };
     let loaded = load(&source)?;
     let x0 = loaded.start(None)?;
-    let check = gradient_test(&loaded.problem, &x0, 1)?;
-    if !check.passed {
-        return Err(Error::GradientCheck(check.verdict));
-    }
-    let cfg = RunConfig {
-        skip_check: true,
-        ..RunConfig::new(source)
-    };
+    // The gradient test is the pipeline's own (run once, at the background, and judged by the
+    // verdict); a failure stops the run there with its message.
+    let cfg = RunConfig::new(source);
     let interrupt = crate::interrupt::Interrupt::from_signals()?;
     let mut sample = run_sample(&loaded, &cfg, out, false, &interrupt, progress)?;
     sample.summary.command = "demo".into();
-    sample.summary.check = Some(check_summary(&check));
     sample.summary.write(out)?;
+    let check = sample
+        .summary
+        .check
+        .clone()
+        .ok_or_else(|| Error::Internal("the demo's gradient test went missing".into()))?;
     let report = report_after_sample(out, &sample, "varpost demo")?;
     let xa = sample
         .summary
