@@ -24,7 +24,9 @@
 //! - the metric's spread per component (the diagonal, root mean square of the log ratios) by less
 //!   than [`SETTLED_METRIC`] between the last two windows,
 //!
-//! the remaining windows are dropped and the final stretch follows at once. A window whose chains
+//! the remaining windows are dropped and the final stretch follows at once. A kernel without step size
+//! or metric (the independence sampler) only burns in ([`WarmupPlan::burn_in`]): its warm-up ends at
+//! the first window in which the chains agree. A window whose chains
 //! disagree does not change the metric either: its draws trace the chains' way to the posterior
 //! (a trend within each chain), not the posterior's spread, and a metric learned from them can be
 //! far worse than the Laplace one (measured: a slow kernel whose chains were still travelling lost
@@ -85,6 +87,14 @@ pub struct WarmupPlan {
     pub settled: Option<u64>,
     /// Whether the chains were given the pooled sampling step size (at `end`).
     pub finished: bool,
+    /// Whether the kernel has a step size and metric to learn; a kernel without (the independence
+    /// sampler) only burns in, and its warm-up settles as soon as the chains agree.
+    #[serde(default = "yes")]
+    pub adapts: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 impl WarmupPlan {
@@ -117,6 +127,16 @@ impl WarmupPlan {
             history: Vec::new(),
             settled: None,
             finished: max == 0,
+            adapts: true,
+        }
+    }
+
+    /// The burn-in of a kernel without step size or metric (at most `max` iterations in dimension
+    /// `n`): the same windows, ended as soon as the chains agree in one of them.
+    pub fn burn_in(max: u64, n: usize) -> Self {
+        WarmupPlan {
+            adapts: false,
+            ..WarmupPlan::new(max, n)
         }
     }
 
@@ -159,12 +179,13 @@ impl WarmupPlan {
             rhat_max,
         };
         let agree = rhat_max.is_nan() || rhat_max < SETTLED_RHAT;
-        let settled = agree
-            && self.history.last().is_some_and(|prev| {
+        let tuned = !self.adapts
+            || self.history.last().is_some_and(|prev| {
                 (step / prev.step_size - 1.0).abs() < SETTLED_STEP && moved < SETTLED_METRIC
             });
+        let settled = agree && tuned;
         self.history.push(report);
-        if agree {
+        if agree && self.adapts {
             self.metric = e.metric;
         }
         if settled && !self.windows.is_empty() {
@@ -313,5 +334,24 @@ mod tests {
         q.close_window(225, &[&a, &a], &[0.5, 0.5]);
         assert_eq!(q.history[1].rhat_max, 1.0);
         assert_eq!(q.settled, Some(225));
+    }
+}
+
+#[cfg(test)]
+mod burn_in_tests {
+    use super::*;
+
+    #[test]
+    fn a_burn_in_ends_at_the_first_window_where_the_chains_agree() {
+        let mut p = WarmupPlan::burn_in(1000, 1);
+        let a: Vec<Vec<f64>> = (0..50)
+            .map(|i| vec![((i % 7) as f64 - 3.0) / 2.0])
+            .collect();
+        let b: Vec<Vec<f64>> = a.iter().map(|x| vec![x[0] + 5.0]).collect();
+        p.close_window(125, &[&a, &b], &[1.0, 1.0]);
+        assert_eq!((p.settled, p.end), (None, 1000), "chains apart: not yet");
+        p.close_window(225, &[&a, &a], &[1.0, 1.0]);
+        assert_eq!((p.settled, p.end), (Some(225), 375));
+        assert!(p.metric.is_unit(), "nothing is learned for such a kernel");
     }
 }

@@ -385,13 +385,18 @@ impl Chains {
             .into_par_iter()
             .map(|c| Runner::start(c, ctx, out_dir))
             .collect::<Result<Vec<_>>>()?;
-        let pooled = ctx.config.learning() == MetricLearning::Pooled
-            && ctx.kernel.spec(ctx.target.dim()).step_size.is_some();
+        let n = ctx.target.dim();
+        let pooled = ctx.config.learning() == MetricLearning::Pooled;
+        let has_step = ctx.kernel.spec(n).step_size.is_some();
         Ok(Chains {
             runners,
             counts_warmup: ctx.target.counts().since(&before),
             counts_sampling: EvalCounts::default(),
-            plan: pooled.then(|| WarmupPlan::new(ctx.config.warmup, ctx.target.dim())),
+            plan: match (pooled, has_step) {
+                (true, true) => Some(WarmupPlan::new(ctx.config.warmup, n)),
+                (true, false) => Some(WarmupPlan::burn_in(ctx.config.warmup, n)),
+                (false, _) => None,
+            },
         })
     }
 

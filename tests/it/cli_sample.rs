@@ -536,3 +536,44 @@ fn with_stderr_captured_sampling_prints_plain_timestamped_progress_lines() {
     assert!(verdict_code(o.status.code()), "{e}");
     assert!(!e.contains("varpost sample ["), "{e}");
 }
+
+/// `--kernel auto` (the default) follows the Laplace check: on the linear-Gaussian problem the Laplace
+/// Gaussian is the posterior (closed form), every importance weight is equal, and the independence
+/// sampler is chosen; on lorenz96 with the square observation operator the check's Pareto k-hat is
+/// far above 0.5 and HMC is chosen. summary.json says which and why.
+#[test]
+fn auto_kernel_follows_the_laplace_check() {
+    let d = temp_dir("auto-kernel");
+    for (problem, set, want, why) in [
+        ("linear-gaussian", None, "laplace-mh", "holds"),
+        ("lorenz96", Some("obs_op=square"), "hmc", "k-hat"),
+    ] {
+        let out = d.join(problem);
+        let mut args = vec![
+            "sample",
+            "--problem",
+            problem,
+            "--draws",
+            "200",
+            "--warmup",
+            "200",
+            "--quiet",
+            "--out",
+            out.to_str().unwrap(),
+        ];
+        if let Some(s) = set {
+            args.extend(["--set", s]);
+        }
+        let o = run(&args);
+        assert!(
+            verdict_code(o.status.code()),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let s: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(out.join("summary.json")).unwrap()).unwrap();
+        assert_eq!(s["sampling"]["kernel"], want, "{problem}");
+        let reason = s["sampling"]["kernel_reason"].as_str().unwrap();
+        assert!(reason.contains(why), "{problem}: {reason}");
+    }
+}
