@@ -100,6 +100,24 @@ figcaption { color: #333; font-size: 0.95em; margin-top: 0.3em; }
 /// as missing rather than linked.
 pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
     let mut h = String::new();
+    head(&mut h, page);
+    if !page.metadata.is_empty() {
+        h.push_str("<h2>Run</h2>\n<dl class=\"meta\">\n");
+        for (k, v) in page.metadata {
+            let _ = writeln!(h, "<dt>{}</dt><dd>{}</dd>", escape(k), escape(v));
+        }
+        h.push_str("</dl>\n");
+    }
+    components_table(&mut h, dir, page);
+    pictures(&mut h, dir, page.figures);
+    h.push_str("</body>\n</html>\n");
+    let path = dir.join(FILE_NAME);
+    write_atomic(&path, h.as_bytes())?;
+    Ok(path)
+}
+
+/// The document head, the title, the verdict and the caution.
+fn head(h: &mut String, page: &ReportPage<'_>) {
     let title = escape(page.title);
     let _ = write!(
         h,
@@ -121,15 +139,10 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
         "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
         escape(page.caution)
     );
+}
 
-    if !page.metadata.is_empty() {
-        h.push_str("<h2>Run</h2>\n<dl class=\"meta\">\n");
-        for (k, v) in page.metadata {
-            let _ = writeln!(h, "<dt>{}</dt><dd>{}</dd>", escape(k), escape(v));
-        }
-        h.push_str("</dl>\n");
-    }
-
+/// The components table, at most `max_rows` rows, with a pointer to components.csv for the rest.
+fn components_table(h: &mut String, dir: &Path, page: &ReportPage<'_>) {
     h.push_str("<h2>Components</h2>\n");
     let shown = page.rows.len().min(page.max_rows);
     if page.rows.len() > shown {
@@ -159,11 +172,14 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
         h.push_str("</tr>\n");
     }
     h.push_str("</tbody>\n</table>\n");
+}
 
-    if !page.figures.is_empty() {
+/// The figures that exist in `dir`, and a note for each that does not.
+fn pictures(h: &mut String, dir: &Path, figures: &[Figure<'_>]) {
+    if !figures.is_empty() {
         h.push_str("<h2>Pictures</h2>\n");
     }
-    for f in page.figures {
+    for f in figures {
         if dir.join(f.file).is_file() {
             let _ = writeln!(
                 h,
@@ -181,12 +197,6 @@ pub fn write_report(dir: &Path, page: &ReportPage<'_>) -> Result<PathBuf> {
             );
         }
     }
-
-    h.push_str("</body>\n</html>\n");
-
-    let path = dir.join(FILE_NAME);
-    write_atomic(&path, h.as_bytes())?;
-    Ok(path)
 }
 
 #[cfg(test)]
