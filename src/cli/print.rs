@@ -7,7 +7,7 @@ use crate::output::summary::{DiagnosticsSummary, LaplaceCheckSummary, LaplaceSum
 use crate::output::Summary;
 use crate::pipeline::{DemoReport, ReportOutcome, SampleOutcome};
 use crate::precond::SpectrumOf;
-use crate::problem::check::GradientReport;
+use crate::problem::check::{describe_fd_worst, GradientReport};
 
 /// The gradient test's table and verdict.
 pub fn check(r: &GradientReport) {
@@ -22,8 +22,17 @@ pub fn check(r: &GradientReport) {
             row.alpha, row.ratio, row.remainder
         );
     }
+    if let (Some(s), Some((a, b))) = (r.remainder_slope, r.slope_window) {
+        println!(
+            "  remainder order {s:.2}, fitted over alpha = {a:.0e} to {b:.0e} (rounding floor {:.1e})",
+            r.rounding_floor
+        );
+    }
     if let Some(e) = r.fd_max_rel_error {
-        println!("  central finite differences: largest relative difference {e:.2e}");
+        println!(
+            "  central finite differences: largest relative difference {e:.2e}; worst components {}",
+            describe_fd_worst(&r.fd_worst)
+        );
     }
     println!("  {}", r.verdict);
 }
