@@ -5,8 +5,11 @@
 //! rounding N (|1 − r| ≥ N / (α |hᵀ∇J|)). The best α gives |1 − r| ≈ 2 √(c N) / |hᵀ∇J|, and the table's
 //! decades miss that α by at most a factor √10, which costs less than a factor 2. So the ratio is
 //! judged only where 4 √(c N) ≤ RATIO_TOL |hᵀ∇J| (criterion "ratio"), with c = max e(α)/α² over the
-//! asymptotic window when its order is 2 (else e/α² at the largest α) and N the rounding floor of
-//! [`super::order`]. Elsewhere — at or near a minimum, where hᵀ∇J ≈ 0 — only the remainder's order
+//! asymptotic window when its order is 2 (else e/α² at the largest α) and N the cost's rounding:
+//! the larger of RATIO_NOISE_ULPS ulps of |J| and the noise measured at the smallest α (ten times the
+//! median remainder there, see [`super::order`]). This N is the actual rounding, not the floor's
+//! thousand-ulp margin: the floor keeps rounding out of a slope fit, while here it would wrongly
+//! declare the ratio out of reach at most ordinary points. Elsewhere — at or near a minimum, where hᵀ∇J ≈ 0 — only the remainder's order
 //! decides (criterion "remainder order"). Both criteria also need the remainder to fall as α^(2 ± ORDER_TOL)
 //! where its slope can be fitted, and the finite differences, where made, to agree within FD_TOL.
 //! (Common practice of the trade, no source; the constants are this crate's choice.)
@@ -17,6 +20,8 @@ use super::TaylorRow;
 
 /// r(α) must come this close to 1 where the ratio is judged.
 pub const RATIO_TOL: f64 = 1e-5;
+/// The rounding of J assumed for the ratio's reach is at least this many ulps of |J|.
+pub const RATIO_NOISE_ULPS: f64 = 10.0;
 /// The remainder's fitted order must be within this of 2.
 pub const ORDER_TOL: f64 = 0.25;
 /// Largest scaled difference to central finite differences.
@@ -64,7 +69,8 @@ pub fn judge(rows: &[TaylorRow], j0: f64, hg: f64, fd: Option<&FdComparison>) ->
         .fold(f64::INFINITY, f64::min);
     let order_ok = order.slope.map(|s| (s - 2.0).abs() <= ORDER_TOL);
     let c = curvature(rows, &order, order_ok == Some(true));
-    let criterion = if hg != 0.0 && 4.0 * (c * order.floor).sqrt() <= RATIO_TOL * hg.abs() {
+    let noise = order.noise.max(RATIO_NOISE_ULPS * f64::EPSILON * j0.abs());
+    let criterion = if hg != 0.0 && 4.0 * (c * noise).sqrt() <= RATIO_TOL * hg.abs() {
         Criterion::Ratio
     } else if order.slope.is_some() {
         Criterion::RemainderOrder

@@ -10,10 +10,13 @@
 //! - Candidate rows: the run of at least MIN_WINDOW consecutive rows above N that reaches the smallest α
 //!   (a dip below N at a large α, where higher-order terms cancel, splits runs; the later run is the more
 //!   asymptotic one).
-//! - Asymptotic window: within the run, the consecutive rows ending at the smallest α possible, and among
-//!   those the longest, whose successive per-decade slopes log10(e(α_k) / e(α_k+1)) all lie within
-//!   SLOPE_SPREAD of their mean. Large α, where the cubic and higher terms still dominate, fall out; so
-//!   does a last row spoilt by rounding. Where no such window exists, the whole run is used.
+//! - Asymptotic window: the longest stretch of consecutive rows that ends at the run's smallest α and
+//!   whose successive per-decade slopes log10(e(α_k) / e(α_k+1)) all lie within SLOPE_SPREAD of their
+//!   mean. Large α, where the cubic and higher terms still dominate, fall out. The window always ends at
+//!   the smallest α above the floor: that is where the order is asymptotic, and a wrong gradient shows
+//!   its first-order remainder there only (at larger α its remainder may still look quadratic). The
+//!   floor's margin keeps rounding out of that last row. Where even the last MIN_WINDOW rows disagree
+//!   (a sign change of the remainder there), the slope is fitted over those rows alone.
 //! - The order is the least-squares slope of log10 e against log10 α over the window.
 
 use super::TaylorRow;
@@ -32,6 +35,8 @@ pub const MIN_WINDOW: usize = 3;
 pub struct Order {
     /// The rounding floor N.
     pub floor: f64,
+    /// FLOOR_NOISE_MULT times the median remainder at the three smallest α: the measured noise part of N.
+    pub noise: f64,
     /// First and last row index (largest and smallest α) of the fitted window.
     pub window: Option<(usize, usize)>,
     /// Whether the window's successive slopes agree (false: the whole run was used).
@@ -42,10 +47,12 @@ pub struct Order {
 
 /// Floor, window and slope of the remainder column of `rows` (α decreasing), for a cost `j0` at x.
 pub fn analyse(rows: &[TaylorRow], j0: f64) -> Order {
-    let floor = rounding_floor(rows, j0);
+    let noise = measured_noise(rows);
+    let floor = (FLOOR_ULPS * f64::EPSILON * j0.abs()).max(noise);
     let Some((a, b)) = last_run(rows, floor) else {
         return Order {
             floor,
+            noise,
             window: None,
             consistent: false,
             slope: None,
@@ -53,18 +60,19 @@ pub fn analyse(rows: &[TaylorRow], j0: f64) -> Order {
     };
     let (window, consistent) = match consistent_window(rows, a, b) {
         Some(w) => (w, true),
-        None => ((a, b), false),
+        None => ((b + 1 - MIN_WINDOW, b), false),
     };
     Order {
         floor,
+        noise,
         window: Some(window),
         consistent,
         slope: Some(fit_slope(&rows[window.0..=window.1])),
     }
 }
 
-/// N = max(FLOOR_ULPS ε |J|, FLOOR_NOISE_MULT · median remainder at the three smallest α).
-pub fn rounding_floor(rows: &[TaylorRow], j0: f64) -> f64 {
+/// FLOOR_NOISE_MULT · median remainder at the three smallest α.
+fn measured_noise(rows: &[TaylorRow]) -> f64 {
     let mut tail: Vec<f64> = rows
         .iter()
         .rev()
@@ -74,7 +82,7 @@ pub fn rounding_floor(rows: &[TaylorRow], j0: f64) -> f64 {
         .collect();
     tail.sort_by(f64::total_cmp);
     let noise = tail.get(tail.len() / 2).copied().unwrap_or(0.0);
-    (FLOOR_ULPS * f64::EPSILON * j0.abs()).max(FLOOR_NOISE_MULT * noise)
+    FLOOR_NOISE_MULT * noise
 }
 
 /// The run of at least MIN_WINDOW consecutive rows above `floor` that ends at the smallest α.
@@ -99,19 +107,16 @@ fn last_run(rows: &[TaylorRow], floor: f64) -> Option<(usize, usize)> {
     best
 }
 
-/// Within rows a..=b: the window ending at the smallest α, longest first, whose per-decade slopes agree.
+/// Within rows a..=b: the longest window ending at b whose per-decade slopes agree.
 fn consistent_window(rows: &[TaylorRow], a: usize, b: usize) -> Option<(usize, usize)> {
     let slopes: Vec<f64> = rows.windows(2).map(|w| pair_slope(&w[0], &w[1])).collect();
-    for end in (a + MIN_WINDOW - 1..=b).rev() {
-        for start in a..=end + 1 - MIN_WINDOW {
-            let s = &slopes[start..end];
-            let mean = s.iter().sum::<f64>() / s.len() as f64;
-            if s.iter().all(|v| (v - mean).abs() <= SLOPE_SPREAD) {
-                return Some((start, end));
-            }
-        }
-    }
-    None
+    (a..=b + 1 - MIN_WINDOW).find_map(|start| {
+        let s = &slopes[start..b];
+        let mean = s.iter().sum::<f64>() / s.len() as f64;
+        s.iter()
+            .all(|v| (v - mean).abs() <= SLOPE_SPREAD)
+            .then_some((start, b))
+    })
 }
 
 /// log10(e1 / e2) / log10(α1 / α2).
