@@ -17,9 +17,15 @@ pub fn check(r: &GradientReport) {
     );
     println!("  {:>8}  {:>22}  {:>12}", "alpha", "r(alpha)", "remainder");
     for row in &r.rows {
+        // Far from 1 (near a minimum r(alpha) means nothing) the ratio is shown in powers of ten.
+        let ratio = if row.ratio.abs() < 1e3 {
+            format!("{:.15}", row.ratio)
+        } else {
+            format!("{:.6e}", row.ratio)
+        };
         println!(
-            "  {:>8.0e}  {:>22.15}  {:>12.3e}",
-            row.alpha, row.ratio, row.remainder
+            "  {:>8.0e}  {:>22}  {:>12.3e}",
+            row.alpha, ratio, row.remainder
         );
     }
     if let (Some(s), Some((a, b))) = (r.remainder_slope, r.slope_window) {
