@@ -225,4 +225,16 @@ fn check_passes_on_the_calibration_scenario_that_once_failed_its_slope() {
     assert!(stdout.contains("criterion: remainder order"), "{stdout}");
     let s = read_json(&out.join("summary.json"));
     assert_eq!(s["check"]["criterion"], "remainder-order");
+
+    // A sampling run started at the analysis gets past its gradient test (exit code 3 is that test).
+    let out = d.join("sample");
+    let o = run(&[
+        "sample", "--problem", "lorenz96", "--set", &set, "--quiet", "--start",
+        start.to_str().unwrap(), "--chains", "2", "--draws", "50", "--warmup", "50",
+        "--laplace-draws", "0", "--out", out.to_str().unwrap(),
+    ]);
+    assert_ne!(o.status.code(), Some(3), "{}", String::from_utf8_lossy(&o.stderr));
+    let s = read_json(&out.join("summary.json"));
+    assert_eq!(s["check"]["passed"], true);
+    assert_eq!(s["check"]["criterion"], "remainder-order");
 }
