@@ -64,6 +64,7 @@ pub struct CheckSummary {
     pub remainder_slope: Option<f64>,
     /// What judged the gradient: "ratio" (r(alpha) reaching 1, with the remainder's order),
     /// "remainder-order" (the remainder's order alone: h.grad J too small, e.g. at a minimum) or "undecided".
+    /// Summaries written before this field judged by the ratio, which is what a missing field reads as.
     #[serde(default)]
     pub criterion: Criterion,
     pub fd_max_rel_error: Option<f64>,

@@ -141,7 +141,7 @@ impl Facts<'_> {
                 if self.order.consistent {
                     ""
                 } else {
-                    " (no stretch of consistent order: all rows above the rounding floor)"
+                    " (even the last rows above the rounding floor disagree in order)"
                 }
             ),
             _ => "no measurable power of alpha (it stays below the rounding floor)".into(),

@@ -39,7 +39,8 @@ pub struct Order {
     pub noise: f64,
     /// First and last row index (largest and smallest α) of the fitted window.
     pub window: Option<(usize, usize)>,
-    /// Whether the window's successive slopes agree (false: the whole run was used).
+    /// Whether the window's successive slopes agree (false: they do not even over the last MIN_WINDOW
+    /// rows, which were used).
     pub consistent: bool,
     /// The fitted slope.
     pub slope: Option<f64>,
