@@ -78,7 +78,7 @@ pub fn judge(rows: &[TaylorRow], j0: f64, hg: f64, fd: Option<&FdComparison>) ->
         Criterion::Undecided
     };
     let ratio_ok = best_ratio_error < RATIO_TOL;
-    let fd_ok = fd.map_or(true, |f| f.max_rel_error < FD_TOL);
+    let fd_ok = fd.is_none_or(|f| f.max_rel_error < FD_TOL);
     let passed = fd_ok
         && match criterion {
             Criterion::Ratio => ratio_ok && order_ok.unwrap_or(true),
