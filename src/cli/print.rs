@@ -7,7 +7,7 @@ use crate::output::summary::{DiagnosticsSummary, LaplaceCheckSummary, LaplaceSum
 use crate::output::Summary;
 use crate::pipeline::{DemoReport, ReportOutcome, SampleOutcome};
 use crate::precond::SpectrumOf;
-use crate::problem::check::GradientReport;
+use crate::problem::check::{describe_fd_worst, GradientReport};
 
 /// The gradient test's table and verdict.
 pub fn check(r: &GradientReport) {
@@ -17,13 +17,28 @@ pub fn check(r: &GradientReport) {
     );
     println!("  {:>8}  {:>22}  {:>12}", "alpha", "r(alpha)", "remainder");
     for row in &r.rows {
+        // Far from 1 (near a minimum r(alpha) means nothing) the ratio is shown in powers of ten.
+        let ratio = if row.ratio.abs() < 1e3 {
+            format!("{:.15}", row.ratio)
+        } else {
+            format!("{:.6e}", row.ratio)
+        };
         println!(
-            "  {:>8.0e}  {:>22.15}  {:>12.3e}",
-            row.alpha, row.ratio, row.remainder
+            "  {:>8.0e}  {:>22}  {:>12.3e}",
+            row.alpha, ratio, row.remainder
+        );
+    }
+    if let (Some(s), Some((a, b))) = (r.remainder_slope, r.slope_window) {
+        println!(
+            "  remainder order {s:.2}, fitted over alpha = {a:.0e} to {b:.0e} (rounding floor {:.1e})",
+            r.rounding_floor
         );
     }
     if let Some(e) = r.fd_max_rel_error {
-        println!("  central finite differences: largest relative difference {e:.2e}");
+        println!(
+            "  central finite differences: largest relative difference {e:.2e}; worst components {}",
+            describe_fd_worst(&r.fd_worst)
+        );
     }
     println!("  {}", r.verdict);
 }

@@ -6,6 +6,7 @@ use super::write_atomic;
 use crate::diagnostics::{Reason, Status};
 use crate::error::{Error, Result};
 use crate::precond::{LaplaceInfo, LaplaceMethod};
+use crate::problem::check::{Criterion, FdComponent};
 use crate::problem::EvalCounts;
 
 /// The caution every output carries.
@@ -61,7 +62,15 @@ pub struct CheckSummary {
     #[serde(deserialize_with = "nullable::f64")]
     pub best_ratio_error: f64,
     pub remainder_slope: Option<f64>,
+    /// What judged the gradient: "ratio" (r(alpha) reaching 1, with the remainder's order),
+    /// "remainder-order" (the remainder's order alone: h.grad J too small, e.g. at a minimum) or "undecided".
+    /// Summaries written before this field judged by the ratio, which is what a missing field reads as.
+    #[serde(default)]
+    pub criterion: Criterion,
     pub fd_max_rel_error: Option<f64>,
+    /// The components with the largest finite-difference differences, worst first.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub fd_worst: Vec<FdComponent>,
 }
 
 /// The Laplace approximation at the analysis (the inverse Hessian there), as reported.

@@ -122,7 +122,9 @@ pub fn check_summary(r: &GradientReport) -> CheckSummary {
         verdict: r.verdict.clone(),
         best_ratio_error: r.best_ratio_error,
         remainder_slope: r.remainder_slope,
+        criterion: r.criterion,
         fd_max_rel_error: r.fd_max_rel_error,
+        fd_worst: r.fd_worst.clone(),
     }
 }
 
