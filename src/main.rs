@@ -6,6 +6,13 @@ use std::io::Write;
 use varpost::error::ExitCode;
 
 fn main() {
+    // Output piped into a reader that stops early (`varpost check | head`): end quietly, as other
+    // command-line tools do, instead of failing on the write. A run cut off that way resumes like any
+    // killed run.
+    // SAFETY: resetting a signal's disposition to its default, before any thread is started.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let code = match varpost::cli::parse() {
         // Usage errors are bad input; --help and --version are done.
         Err(e) => {

@@ -476,3 +476,29 @@ fn a_sampling_run_is_not_overwritten() {
         assert!(!d.join("summary.json").exists(), "{cmd} wrote a summary");
     }
 }
+
+/// Output piped into a reader that stops after one line (`varpost check | head -1`) ends varpost
+/// quietly, as it does other command-line tools (SIGPIPE; common practice, no source), not with an
+/// internal error.
+#[test]
+fn a_reader_that_stops_early_ends_the_run_quietly() {
+    use std::io::{BufRead, BufReader};
+    use std::process::Stdio;
+    let d = common::temp_dir("broken-pipe");
+    let mut child = common::varpost()
+        .args(["check", "--problem", "lorenz96", "--out"])
+        .arg(d.join("run"))
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut first = String::new();
+    BufReader::new(child.stdout.take().unwrap())
+        .read_line(&mut first)
+        .unwrap();
+    // The reader goes away after one line.
+    let out = child.wait_with_output().unwrap();
+    let e = String::from_utf8_lossy(&out.stderr);
+    assert!(!e.contains("internal error"), "{e}");
+    assert!(!first.is_empty());
+}
