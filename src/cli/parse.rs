@@ -59,6 +59,17 @@ pub fn positive(s: &str) -> Result<f64, String> {
     }
 }
 
+/// A wall-clock limit in seconds: above 0 and at most 1e9.
+pub fn time_limit(s: &str) -> Result<f64, String> {
+    const WHAT: &str = "seconds above 0 and at most 1e9 (leave the option out for no limit)";
+    let v = finite(s, WHAT)?;
+    if v > 0.0 && v <= MAX_SECONDS {
+        Ok(v)
+    } else {
+        Err(format!("out of range; give {WHAT}"))
+    }
+}
+
 /// The HMC integration time: positive and at most 1e6 (the sampler's own limit).
 pub fn integration_time(s: &str) -> Result<f64, String> {
     const WHAT: &str =

@@ -10,7 +10,7 @@ use super::diagnose::diagnose;
 use super::sample::{read_run, SampleOutcome};
 use crate::config::RunConfig;
 use crate::diagnostics::{
-    autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
+    autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress, TargetFacts,
     Status, Verdict, CONDITIONAL_CAUTION,
 };
 use crate::error::{Error, Result};
@@ -23,7 +23,7 @@ use crate::output::summary::CAUTION;
 use crate::output::table::{write_components, ComponentTable};
 use crate::output::{worst_first, Summary};
 use crate::sampler::draws::FLAG_DIVERGENT;
-use crate::sampler::{ChainDraws, Checkpoint, Ensemble};
+use crate::sampler::{ChainDraws, Checkpoint, Ensemble, StopReason};
 
 /// What the report found and wrote.
 pub struct ReportOutcome {
@@ -168,8 +168,26 @@ fn verdict_from_disk(
         names: names.as_deref(),
         divergences,
         partial: progress,
+        target: target_facts(run, summary),
     };
     Ok(Verdict::judge(stats, run.sampler.chains, &facts))
+}
+
+/// The target ESS of a run that extended its chains, and what ended it, from summary.json.
+fn target_facts(run: &RunConfig, summary: &Summary) -> Option<TargetFacts> {
+    let stop = summary.sampling.as_ref()?.stop_reason.as_deref()?;
+    let stop = [
+        StopReason::TargetMet,
+        StopReason::MaxEvaluations,
+        StopReason::TimeLimit,
+    ]
+    .into_iter()
+    .find(|r| r.name() == stop)?;
+    (run.stop.target_ess > 0).then_some(TargetFacts {
+        target_ess: run.stop.target_ess,
+        stop: stop.name(),
+        cut_short: stop.cut_short(),
+    })
 }
 
 /// The error for a run whose chains hold too few draws for any diagnostic yet, saying how far it got.
@@ -203,7 +221,8 @@ fn run_progress(
     draws: &ChainDraws,
 ) -> Option<RunProgress> {
     let draws_per_chain: Vec<u64> = draws.files().iter().map(|f| f.records).collect();
-    let planned = run.sampler.draws;
+    let extra = Checkpoint::load(dir).map_or(0, |c| c.extra_draws);
+    let planned = run.sampler.draws + extra;
     if draws_per_chain.iter().all(|&d| d >= planned) {
         return None;
     }

@@ -47,15 +47,17 @@ pub mod laplace_mh;
 pub mod mala;
 pub mod nuts;
 pub mod state;
+pub mod stop;
 pub mod target;
 pub mod welford;
 
 pub use crate::adapt::Metric;
-pub use chain::{run, ChainSummary, Progress, SampleResult};
+pub use chain::{run, run_extended, ChainSummary, Ended, Extension, Limits, Progress, SampleResult};
 pub use checkpoint::Checkpoint;
 pub use config::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use ensemble::{ChainDraws, Ensemble, WeightedDraws};
+pub use stop::{StopReason, StopRule};
 pub use target::{CountedProblem, Target};
 pub use welford::Welford;
 

@@ -87,6 +87,7 @@ fn fresh(kernel: KernelKind, dim: usize, chains: usize) -> Checkpoint {
         counts_warmup: Default::default(),
         counts_sampling: Default::default(),
         plan: None,
+        extra_draws: 0,
         complete: false,
     }
 }
