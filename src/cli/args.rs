@@ -395,12 +395,11 @@ pub struct ChainArgs {
     /// Extend the chains in blocks until every component's bulk and tail ESS reach this and R-hat is
     /// below 1.01 (--draws is then the first block per chain); 0 keeps the fixed --draws.
     #[arg(long, default_value_t = DEFAULT_TARGET_ESS, allow_negative_numbers = true,
-          value_parser = clap::value_parser!(u64).range(0..=1_000_000_000))]
+          value_parser = parse::target_ess)]
     pub target_ess: u64,
     /// The most model runs for the whole run, every stage counted (default: no limit). The chains
     /// stop before they would exceed it, at the model runs per iteration measured so far.
-    #[arg(long, allow_negative_numbers = true,
-          value_parser = clap::value_parser!(u64).range(1..))]
+    #[arg(long, allow_negative_numbers = true, value_parser = parse::max_evaluations)]
     pub max_evaluations: Option<u64>,
     /// Wall-clock seconds for this invocation (default: no limit); checked at every checkpoint. The
     /// run saves its state, writes its outputs from the draws so far, and `varpost resume`

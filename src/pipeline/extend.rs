@@ -57,7 +57,13 @@ pub fn run_chains(
             Ended::Finished => None,
         };
         if let Some(stop) = stop {
-            return done(result, stop, out);
+            // A limit that stopped a block after its draws had already met the target did not end
+            // the run short of it.
+            let met = stop.cut_short()
+                && draws_per_chain(&result) >= 4
+                && cfg.stop.target_ess > 0
+                && target_met(out, cfg)?;
+            return done(result, if met { StopReason::TargetMet } else { stop }, out);
         }
         let (min_ess, rhat_ok) = reading(out, cfg.sampler.chains)?;
         if rhat_ok && min_ess >= cfg.stop.target_ess as f64 {
@@ -120,6 +126,12 @@ fn done(result: SampleResult, stop: StopReason, out: &Path) -> Result<Chained> {
 /// The fewest draws any chain holds.
 pub fn draws_per_chain(result: &SampleResult) -> u64 {
     result.chains.iter().map(|c| c.draws).min().unwrap_or(0)
+}
+
+/// Whether the draws in `out` meet the run's target.
+fn target_met(out: &Path, cfg: &RunConfig) -> Result<bool> {
+    let (min_ess, rhat_ok) = reading(out, cfg.sampler.chains)?;
+    Ok(rhat_ok && min_ess >= cfg.stop.target_ess as f64)
 }
 
 /// The smallest bulk or tail ESS over the components (NaN when one is NaN), and whether every R-hat
