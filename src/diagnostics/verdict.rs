@@ -423,11 +423,15 @@ fn analysis_sentence(a: &AnalysisReading) -> String {
 }
 
 fn target_sentence(t: &TargetFacts, w: &Worst) -> String {
+    let next = if t.stop == "time limit" {
+        "Continue it with `varpost resume DIR` (the time limit counts anew from there)"
+    } else {
+        "The budget counts the whole run: run again with a larger --max-evaluations"
+    };
     format!(
-        "The {} limit ended the run before every component reached the target ESS of {} with R-hat \
+        "The {} ended the run before every component reached the target ESS of {} with R-hat \
          below {RHAT_LIMIT} (smallest bulk ESS {:.0}, smallest tail ESS {:.0}, largest R-hat {:.3}): \
-         the ensemble is less precise than asked for. Continue it with `varpost resume DIR` (a new \
-         time limit counts from then), or run again with a larger budget.",
+         the ensemble is less precise than asked for. {next}.",
         t.stop, t.target_ess, w.bulk, w.tail, w.rhat
     )
 }

@@ -221,6 +221,11 @@ fn run_progress(
     draws: &ChainDraws,
 ) -> Option<RunProgress> {
     let draws_per_chain: Vec<u64> = draws.files().iter().map(|f| f.records).collect();
+    // A run whose chains a limit ended (summary.json says where) is not partial.
+    let ended_at = summary.sampling.as_ref().and_then(|s| s.draws_reached);
+    if ended_at.is_some_and(|r| draws_per_chain.iter().all(|&d| d >= r)) {
+        return None;
+    }
     let extra = Checkpoint::load(dir).map_or(0, |c| c.extra_draws);
     let planned = run.sampler.draws + extra;
     if draws_per_chain.iter().all(|&d| d >= planned) {
