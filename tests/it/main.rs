@@ -11,6 +11,7 @@ mod adapter_python;
 mod cli_core;
 mod cli_hessian;
 mod cli_sample;
+mod cli_target_ess;
 mod cli_verdict;
 mod common;
 mod config_compat;
