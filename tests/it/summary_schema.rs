@@ -51,6 +51,9 @@ fn sample_summary_schema() {
         "sample",
         "--problem",
         "linear-gaussian",
+        // HMC, whose chains fill every per-chain field (step size, E-BFMI, the pooled warm-up's).
+        "--kernel",
+        "hmc",
         // Enough draws for the chains to pass their checks, so that every verdict field is filled.
         "--draws",
         "1000",
