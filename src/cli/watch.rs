@@ -226,12 +226,12 @@ mod tests {
     fn chain_stages_follow_the_slowest_chain() {
         let c = ChainProgress::new(2, 10, 30);
         assert_eq!(c.stage(), None);
-        c.advance(0, 12);
+        c.advance(0, 12, 30);
         assert_eq!(c.stage(), Some("warm-up"));
-        c.advance(1, 10);
+        c.advance(1, 10, 30);
         assert_eq!(c.stage(), Some("sampling"));
         assert_eq!(c.iterations(), (22, 60));
-        c.advance(7, 1); // a chain the run does not have is ignored
+        c.advance(7, 1, 30); // a chain the run does not have is ignored
         assert_eq!(c.iterations(), (22, 60));
     }
 

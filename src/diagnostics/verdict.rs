@@ -855,6 +855,7 @@ mod tests {
                 4
             ],
             partial: None,
+            target: None,
         }
     }
 
@@ -1104,6 +1105,34 @@ mod tests {
             "{text}"
         );
         assert!(text.contains("12345 model runs"), "{text}");
+    }
+
+    #[test]
+    fn a_limit_that_ended_the_run_short_of_the_target_is_not_green() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        // The chains pass the verdict's own limits (ESS 800, R-hat 1.002) but not a target of 1000.
+        f.target = Some(TargetFacts {
+            target_ess: 1000,
+            stop: "max evaluations",
+            cut_short: true,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::ConvergedWithWarnings);
+        assert_eq!(v.reasons, vec![Reason::TargetNotReached]);
+        assert!(v.text().contains("max evaluations"), "{}", v.text());
+        assert!(v.text().contains("--max-evaluations"), "{}", v.text());
+        // Reached all the same, or ended by the target itself: no reason.
+        for (target_ess, stop, cut_short) in [(500, "time limit", true), (1000, "target met", false)]
+        {
+            f.target = Some(TargetFacts {
+                target_ess,
+                stop,
+                cut_short,
+            });
+            let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+            assert_eq!(v.status, Status::Converged, "{stop}");
+        }
     }
 
     #[test]
