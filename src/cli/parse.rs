@@ -75,7 +75,8 @@ pub fn target_ess(s: &str) -> Result<u64, String> {
 
 /// A budget of model runs: a whole number, 1 or more.
 pub fn max_evaluations(s: &str) -> Result<u64, String> {
-    const WHAT: &str = "a whole number of model runs, 1 or more (leave the option out for no limit)";
+    const WHAT: &str =
+        "a whole number of model runs, 1 or more (leave the option out for no limit)";
     let t = s.trim();
     if t.starts_with('-') {
         return Err(format!("negative; give {WHAT}"));

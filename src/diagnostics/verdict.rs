@@ -1123,7 +1123,8 @@ mod tests {
         assert!(v.text().contains("max evaluations"), "{}", v.text());
         assert!(v.text().contains("--max-evaluations"), "{}", v.text());
         // Reached all the same, or ended by the target itself: no reason.
-        for (target_ess, stop, cut_short) in [(500, "time limit", true), (1000, "target met", false)]
+        for (target_ess, stop, cut_short) in
+            [(500, "time limit", true), (1000, "target met", false)]
         {
             f.target = Some(TargetFacts {
                 target_ess,

@@ -27,20 +27,27 @@ pub struct Chained {
     pub stop: StopReason,
 }
 
+/// Where the run stands when the chains start.
+#[derive(Debug, Clone, Copy)]
+pub struct Before {
+    /// When this invocation began (the time limit counts from there).
+    pub started: Instant,
+    /// The model runs the stages before the chains needed.
+    pub runs: u64,
+}
+
 /// Runs the chains of `cfg` into `out` (continuing from `resume`) until the stop rule of `cfg` ends
-/// them. `started` is when this invocation began (the time limit counts from there), `runs_before`
-/// the model runs the stages before the chains needed.
+/// them.
 pub fn run_chains(
     target: &Target<'_>,
     cfg: &RunConfig,
     out: &Path,
     resume: Option<Checkpoint>,
-    started: Instant,
-    runs_before: u64,
+    before: Before,
     interrupt: &Interrupt,
     progress: &dyn Progress,
 ) -> Result<Chained> {
-    let limits = limits(cfg, started, runs_before)?;
+    let limits = limits(cfg, before.started, before.runs)?;
     let mut ck = resume;
     let mut extra = None;
     loop {
@@ -48,8 +55,15 @@ pub fn run_chains(
             extra_draws: extra,
             limits,
         };
-        let (result, ended) =
-            run_extended(target, &cfg.sampler, out, ck.take(), &ext, interrupt, progress)?;
+        let (result, ended) = run_extended(
+            target,
+            &cfg.sampler,
+            out,
+            ck.take(),
+            &ext,
+            interrupt,
+            progress,
+        )?;
         let stop = match ended {
             Ended::MaxEvaluations => Some(StopReason::MaxEvaluations),
             Ended::TimeLimit => Some(StopReason::TimeLimit),
@@ -159,7 +173,11 @@ fn affordable_draws(result: &SampleResult, max: u64, thin: u64) -> u64 {
     if used >= max {
         return 0;
     }
-    let iterations: u64 = result.chains.iter().map(|c| c.stats.sampling.iterations).sum();
+    let iterations: u64 = result
+        .chains
+        .iter()
+        .map(|c| c.stats.sampling.iterations)
+        .sum();
     if iterations == 0 {
         return 0;
     }

@@ -10,8 +10,8 @@ use super::diagnose::diagnose;
 use super::sample::{read_run, SampleOutcome};
 use crate::config::RunConfig;
 use crate::diagnostics::{
-    autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress, TargetFacts,
-    Status, Verdict, CONDITIONAL_CAUTION,
+    autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
+    Status, TargetFacts, Verdict, CONDITIONAL_CAUTION,
 };
 use crate::error::{Error, Result};
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};

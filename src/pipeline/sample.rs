@@ -13,7 +13,7 @@ use std::time::Instant;
 use super::assemble::{self, laplace_summary, Diagnosis, Sampled, StageResults};
 use super::choose::choose_kernel;
 use super::diagnose::diagnose;
-use super::extend::{run_chains, Chained};
+use super::extend::{run_chains, Before, Chained};
 use super::load::Loaded;
 use super::stages::{self, StageCounter};
 use crate::config::RunConfig;
@@ -112,8 +112,12 @@ pub fn run_sample(
     assemble::summary(loaded, command, &results, pre_sampling, &counter.by_stage).write(out)?;
 
     let target = Target::new(problem, &loaded.name, x_star, metric.clone())?;
-    let ctx = (started, pre_sampling.model_runs());
-    let Chained { result, stop } = chains_stage(&target, cfg, out, resume, ctx, interrupt, progress)?;
+    let ctx = Before {
+        started,
+        runs: pre_sampling.model_runs(),
+    };
+    let Chained { result, stop } =
+        chains_stage(&target, cfg, out, resume, ctx, interrupt, progress)?;
     let mut by_stage = counter.by_stage.clone();
     by_stage.insert("warmup".into(), result.counts_warmup);
     by_stage.insert("sampling".into(), result.counts_sampling);
@@ -162,13 +166,13 @@ fn prepare_folder(cfg: &RunConfig, out: &Path, resume: bool) -> Result<()> {
 }
 
 /// The chains, continued from the checkpoint when resuming, until the run's stop rule ends them;
-/// `(started, runs_before)`: when this invocation began and the model runs before the chains.
+/// `before`: when this invocation began and the model runs before the chains.
 fn chains_stage(
     target: &Target<'_>,
     cfg: &RunConfig,
     out: &Path,
     resume: bool,
-    (started, runs_before): (Instant, u64),
+    before: Before,
     interrupt: &Interrupt,
     progress: &dyn Progress,
 ) -> Result<Chained> {
@@ -177,7 +181,7 @@ fn chains_stage(
     } else {
         None
     };
-    run_chains(target, cfg, out, ck, started, runs_before, interrupt, progress)
+    run_chains(target, cfg, out, ck, before, interrupt, progress)
 }
 
 /// Diagnostics of the chains' draws and the verdict on the whole run: the gradient test, the analysis,

@@ -570,7 +570,11 @@ impl Chains {
         let per_iteration = used as f64 / done as f64;
         let chains = self.runners.len().max(1) as f64;
         let room = (max - used) as f64 / (per_iteration * chains);
-        Some(if room.is_finite() { room.floor() as u64 } else { u64::MAX })
+        Some(if room.is_finite() {
+            room.floor() as u64
+        } else {
+            u64::MAX
+        })
     }
 
     /// Where the warm-up ends: fixed, or where the pooled warm-up settled.

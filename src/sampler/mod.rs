@@ -52,7 +52,9 @@ pub mod target;
 pub mod welford;
 
 pub use crate::adapt::Metric;
-pub use chain::{run, run_extended, ChainSummary, Ended, Extension, Limits, Progress, SampleResult};
+pub use chain::{
+    run, run_extended, ChainSummary, Ended, Extension, Limits, Progress, SampleResult,
+};
 pub use checkpoint::Checkpoint;
 pub use config::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};

@@ -65,7 +65,10 @@ fn a_short_first_block_extends_until_the_target_is_met_and_matches_the_closed_fo
         assert_eq!(smp["target_ess"], 400);
         assert_eq!(smp["draws_per_chain"], 40);
         let reached = smp["draws_reached"].as_u64().unwrap();
-        assert!(reached > 40, "{kernel}: the chains were extended ({reached})");
+        assert!(
+            reached > 40,
+            "{kernel}: the chains were extended ({reached})"
+        );
         assert_eq!(s["posterior"]["draws"].as_u64().unwrap(), 4 * reached);
         assert!(min_ess(&s) >= 400.0, "{kernel}: {}", min_ess(&s));
         assert!(s["diagnostics"]["rhat_max"].as_f64().unwrap() < 1.01);
@@ -80,7 +83,10 @@ fn a_short_first_block_extends_until_the_target_is_met_and_matches_the_closed_fo
             let z = (mean[i] - rmean[i]).abs() / mcse[i];
             assert!(z < 4.0, "{kernel} component {i}: mean {z:.2} MCSE off");
             let zv = (var[i] - rvar[i]).abs() / (2.0 * var[i].sqrt() * mcse_sd[i]);
-            assert!(zv < 4.0, "{kernel} component {i}: variance {zv:.2} MCSE off");
+            assert!(
+                zv < 4.0,
+                "{kernel} component {i}: variance {zv:.2} MCSE off"
+            );
         }
     }
 }
@@ -118,7 +124,12 @@ fn max_evaluations_ends_the_run_early_with_that_reason_and_a_verdict_that_is_not
     assert!(verdict.contains("max evaluations"), "{verdict}");
     // `report` on the folder reaches the same verdict (a run a limit ended is not partial).
     let o = run(&["report", out.to_str().unwrap()]);
-    assert_eq!(o.status.code(), code, "{}", String::from_utf8_lossy(&o.stderr));
+    assert_eq!(
+        o.status.code(),
+        code,
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
 }
 
 #[test]
@@ -243,11 +254,19 @@ fn kill_9_during_an_extension_block_then_resume_reproduces_the_uninterrupted_run
         "resume: {}",
         String::from_utf8_lossy(&o.stderr)
     );
-    for f in ["chain-0.draws", "chain-1.draws", "chain-2.draws", "chain-3.draws", "checkpoint.vpck"]
-    {
+    for f in [
+        "chain-0.draws",
+        "chain-1.draws",
+        "chain-2.draws",
+        "chain-3.draws",
+        "checkpoint.vpck",
+    ] {
         let a = std::fs::read(full.join(f)).unwrap();
         let b = std::fs::read(cut.join(f)).unwrap();
-        assert!(a == b, "{f} differs after kill -9 in an extension block and resume");
+        assert!(
+            a == b,
+            "{f} differs after kill -9 in an extension block and resume"
+        );
     }
     let (sa, sb) = (
         read_json(&full.join("summary.json")),
@@ -256,7 +275,10 @@ fn kill_9_during_an_extension_block_then_resume_reproduces_the_uninterrupted_run
     for key in ["posterior", "chains", "diagnostics", "evaluations"] {
         assert_eq!(sa[key], sb[key], "{key} differs after kill and resume");
     }
-    assert_eq!(sa["sampling"]["draws_reached"], sb["sampling"]["draws_reached"]);
+    assert_eq!(
+        sa["sampling"]["draws_reached"],
+        sb["sampling"]["draws_reached"]
+    );
     assert_eq!(sb["sampling"]["stop_reason"], "target met");
 }
 

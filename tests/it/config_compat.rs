@@ -41,7 +41,8 @@ fn a_first_release_record_reads_with_its_settings() {
 #[test]
 fn the_stop_rule_is_recorded_and_checked() {
     let mut v = fixture();
-    v["stop"] = serde_json::json!({ "target_ess": 800, "max_evaluations": 50000, "time_limit": 60.0 });
+    v["stop"] =
+        serde_json::json!({ "target_ess": 800, "max_evaluations": 50000, "time_limit": 60.0 });
     let c = read(&v, "stop-rule").unwrap();
     assert_eq!(c.stop.target_ess, 800);
     assert_eq!(c.stop.max_evaluations, Some(50000));

@@ -642,8 +642,7 @@ fn extend_gauss(
     let c = Counted::new(g);
     let t = Target::new(&c, "gauss4", m, Gaussian::precond(&h)).unwrap();
     let ck = resume.then(|| Checkpoint::load(dir).unwrap());
-    varpost::sampler::run_extended(&t, cfg, dir, ck, ext, &Interrupt::new(), &|_, _, _| {})
-        .unwrap()
+    varpost::sampler::run_extended(&t, cfg, dir, ck, ext, &Interrupt::new(), &|_, _, _| {}).unwrap()
 }
 
 /// A finished run extended by E draws per chain holds the same draws as a run of draws + E from the
@@ -686,8 +685,16 @@ fn an_extended_run_draws_what_a_longer_run_draws_and_a_budget_stops_it() {
         ..Default::default()
     };
     let ck = Checkpoint::load(&dir).unwrap();
-    let e = varpost::sampler::run_extended(&t, &short, &dir, Some(ck), &fewer, &Interrupt::new(), &|_, _, _| {})
-        .unwrap_err();
+    let e = varpost::sampler::run_extended(
+        &t,
+        &short,
+        &dir,
+        Some(ck),
+        &fewer,
+        &Interrupt::new(),
+        &|_, _, _| {},
+    )
+    .unwrap_err();
     assert!(e.to_string().contains("cannot take back"), "{e}");
     // A budget: the chains stop within it.
     let budget_dir = temp_dir("ext-budget");

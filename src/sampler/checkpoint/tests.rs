@@ -265,7 +265,9 @@ fn the_run_length_counts_the_extension() {
         let mut ck = fresh(KernelKind::Mala, 2, 1);
         ck.extra_draws = extra;
         ck.complete = true;
-        let e = Checkpoint::decode(&p, &bytes_of(&ck)).unwrap_err().to_string();
+        let e = Checkpoint::decode(&p, &bytes_of(&ck))
+            .unwrap_err()
+            .to_string();
         assert!(e.contains(&format!("iteration is 0 of {total}")), "{e}");
         // It round-trips, and a run never extended writes no such field.
         ck.complete = false;

@@ -48,7 +48,11 @@ pub(super) fn validate(ck: &Checkpoint) -> Result<(), String> {
         warmup,
         warmup_max: config.warmup,
         thin: config.thin,
-        total: warmup + config.draws.saturating_add(ck.extra_draws).saturating_mul(config.thin),
+        total: warmup
+            + config
+                .draws
+                .saturating_add(ck.extra_draws)
+                .saturating_mul(config.thin),
         uses_gradient: kernel.spec(ck.dim).uses_gradient,
         seed: ChainRng::seed_from_u64(config.seed).get_seed(),
     };
