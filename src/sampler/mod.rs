@@ -6,7 +6,8 @@
 //!   diagnostics only, and the step size is passed in so that the warm-up needs no rebuild:
 //!   [`mala`], [`hmc`] (with [`integrator`]), [`laplace_mh`];
 //! - [`chain`]: running the chains in parallel, with warm-up, streaming and checkpoints
-//!   ([`run`]); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
+//!   ([`run`], and [`run_extended`] for chains extended by more draws or stopped by [`Limits`]);
+//!   [`stop`] (when a run stops: fixed draws or a target ESS, and the next block's size); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
 //!   [`checkpoint`] and [`state`] (what a checkpoint saves of one chain).
 //!
 //! # Example
