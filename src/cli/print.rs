@@ -142,13 +142,13 @@ fn stopped(s: &crate::output::Summary) {
     let (Some(reason), Some(reached)) = (&smp.stop_reason, smp.draws_reached) else {
         return;
     };
-    let target = if smp.target_ess > 0 {
-        format!(" (target ESS {})", smp.target_ess)
+    let (target, first) = if smp.target_ess > 0 {
+        (format!(" (target ESS {})", smp.target_ess), "first block")
     } else {
-        String::new()
+        (String::new(), "planned")
     };
     println!(
-        "  stopped by: {reason}{target}; {reached} draws per chain (first block {})",
+        "  stopped by: {reason}{target}; {reached} draws per chain ({first} {})",
         smp.draws_per_chain
     );
 }

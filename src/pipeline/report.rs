@@ -221,9 +221,11 @@ fn run_progress(
     draws: &ChainDraws,
 ) -> Option<RunProgress> {
     let draws_per_chain: Vec<u64> = draws.files().iter().map(|f| f.records).collect();
-    // A run whose chains a limit ended (summary.json says where) is not partial.
+    // A run extended towards a target whose chains a limit ended (summary.json says where) is not
+    // partial: the verdict says the target was not reached.
     let ended_at = summary.sampling.as_ref().and_then(|s| s.draws_reached);
-    if ended_at.is_some_and(|r| draws_per_chain.iter().all(|&d| d >= r)) {
+    if run.stop.target_ess > 0 && ended_at.is_some_and(|r| draws_per_chain.iter().all(|&d| d >= r))
+    {
         return None;
     }
     let extra = Checkpoint::load(dir).map_or(0, |c| c.extra_draws);

@@ -17,11 +17,12 @@ use super::extend::{run_chains, Before, Chained};
 use super::load::Loaded;
 use super::stages::{self, StageCounter};
 use crate::config::RunConfig;
-use crate::diagnostics::{LaplaceFacts, RunFacts, TargetFacts, Verdict};
+use crate::diagnostics::{LaplaceFacts, RunFacts, RunProgress, TargetFacts, Verdict};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::output::Summary;
 use crate::precond::Preconditioner;
+use crate::problem::EvalCounts;
 use crate::sampler::checkpoint::checkpoint_path;
 use crate::sampler::{
     ChainDraws, Checkpoint, Ensemble, Progress, SampleConfig, SampleResult, StopReason, Target,
@@ -124,7 +125,7 @@ pub fn run_sample(
     let evaluations = pre_sampling
         .plus(&result.counts_warmup)
         .plus(&result.counts_sampling);
-    let diagnosis = diagnosis_stage(out, loaded, cfg, &results, &result, stop)?;
+    let diagnosis = diagnosis_stage(out, loaded, cfg, &results, &result, stop, evaluations)?;
     results.sampling = Some(Sampled {
         result,
         config: cfg.sampler.clone(),
@@ -194,6 +195,7 @@ fn diagnosis_stage(
     results: &StageResults,
     sampled: &SampleResult,
     stop: StopReason,
+    evaluations: EvalCounts,
 ) -> Result<Diagnosis> {
     let ensemble = Ensemble::Chains(ChainDraws::open(out, cfg.sampler.chains)?);
     let (stats, ebfmi) = diagnose(&ensemble)?;
@@ -217,7 +219,12 @@ fn diagnosis_stage(
             sampled.chains.iter().map(|c| (c.divergences, c.draws)),
             cfg.sampler.thin,
         ),
-        partial: None,
+        // Fixed draws a limit kept the chains from: the run is partial, and `resume` continues it.
+        partial: (cfg.stop.target_ess == 0 && stop.cut_short()).then(|| RunProgress {
+            draws_per_chain: sampled.chains.iter().map(|c| c.draws).collect(),
+            planned: cfg.sampler.draws,
+            model_runs: evaluations.model_runs(),
+        }),
         target: (cfg.stop.target_ess > 0).then_some(TargetFacts {
             target_ess: cfg.stop.target_ess,
             stop: stop.name(),
