@@ -125,12 +125,19 @@ fn limits(cfg: &RunConfig, started: Instant, runs_before: u64) -> Result<Limits>
 /// The chains' result, after checking that they hold enough draws to be diagnosed.
 fn done(result: SampleResult, stop: StopReason, out: &Path) -> Result<Chained> {
     let held = draws_per_chain(&result);
+    if held < 4 && stop == StopReason::MaxEvaluations {
+        return Err(Error::Config(format!(
+            "--max-evaluations: the budget ended the run before the chains held 4 draws each (they \
+             hold {held}, after {} model runs for the chains, warm-up included); run again with a \
+             larger budget",
+            result.counts_warmup.plus(&result.counts_sampling).model_runs()
+        )));
+    }
     if held < 4 {
         return Err(Error::Interrupted(format!(
-            "the {} ended the run before the chains held 4 draws each (they hold {held}, after {} \
-             warm-up iterations); the state is saved in {}",
+            "the {} ended the run before the chains held 4 draws each (they hold {held}); the state \
+             is saved in {}",
             stop.name(),
-            result.warmup_iterations,
             out.display()
         )));
     }

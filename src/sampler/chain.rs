@@ -527,9 +527,9 @@ impl Chains {
             }
             let mut until = self.segment_end(lowest, config);
             if let Some(max) = limits.max_chain_runs {
-                match self.affordable(lowest, max) {
+                match self.affordable(max) {
                     Some(0) => return Ok(Ended::MaxEvaluations),
-                    Some(n) => until = until.min(lowest + n),
+                    Some(n) => until = until.min(lowest.saturating_add(n)),
                     None => {}
                 }
             }
@@ -555,17 +555,17 @@ impl Chains {
         self.counts_warmup.model_runs() + self.counts_sampling.model_runs()
     }
 
-    /// How many more iterations every chain can do from `lowest` within `max` model runs for the
-    /// chains, at the model runs per iteration measured so far; `None` before any iteration (nothing
-    /// measured yet), `Some(0)` when the budget is spent.
-    fn affordable(&self, lowest: u64, max: u64) -> Option<u64> {
+    /// How many more iterations every chain can do within `max` model runs for the chains, at the
+    /// model runs per iteration measured so far: one before any iteration (to measure), `Some(0)`
+    /// when the budget is spent.
+    fn affordable(&self, max: u64) -> Option<u64> {
         let used = self.chain_runs();
         if used >= max {
             return Some(0);
         }
         let done: u64 = self.runners.iter().map(|r| r.iteration).sum();
-        if done == 0 || lowest == 0 {
-            return None;
+        if done == 0 {
+            return Some(1);
         }
         let per_iteration = used as f64 / done as f64;
         let chains = self.runners.len().max(1) as f64;
