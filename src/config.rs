@@ -17,7 +17,7 @@ use serde_json::Value;
 pub use crate::adapter::AdapterConfig;
 pub use crate::optimize::MapConfig;
 pub use crate::precond::{LaplaceMethod, LaplaceOptions};
-pub use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig};
+pub use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, SampleConfig, StopRule};
 
 use crate::error::{Error, Result};
 use crate::util::atomic::write_atomic;
@@ -129,6 +129,10 @@ pub struct RunConfig {
     /// Skip the gradient test at the start.
     #[serde(default)]
     pub skip_check: bool,
+    /// When the chains stop: the fixed draws, or a target ESS within limits (records written before
+    /// this setting existed keep the fixed draws).
+    #[serde(default)]
+    pub stop: StopRule,
 }
 
 fn first_version() -> u32 {
@@ -152,6 +156,7 @@ impl RunConfig {
             laplace_check: LaplaceCheckConfig::default(),
             check_seed: 1,
             skip_check: false,
+            stop: StopRule::default(),
         }
     }
 
@@ -163,6 +168,7 @@ impl RunConfig {
         self.lbfgs.validate()?;
         validate_laplace(&self.laplace)?;
         self.sampler.validate()?;
+        self.stop.validate()?;
         let d = self.laplace_check.draws;
         if d != 0 && d < LaplaceCheckConfig::MIN_DRAWS {
             return Err(Error::Config(format!(

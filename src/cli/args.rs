@@ -19,6 +19,7 @@ use crate::pipeline::MapRunConfig;
 use crate::precond::LaplaceOptions;
 use crate::sampler::config::{NutsSettings, MAX_CHAINS};
 use crate::sampler::nuts::MAX_TREE_DEPTH;
+use crate::sampler::stop::{StopRule, DEFAULT_TARGET_ESS};
 use crate::sampler::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 
 /// Posterior uncertainty for strong-constraint 4D-Var: gradient check, L-BFGS analysis, Hessian at the
@@ -391,9 +392,32 @@ pub struct ChainArgs {
     /// Skip the gradient test at the start.
     #[arg(long)]
     pub skip_check: bool,
+    /// Extend the chains in blocks until every component's bulk and tail ESS reach this and R-hat is
+    /// below 1.01 (--draws is then the first block per chain); 0 keeps the fixed --draws.
+    #[arg(long, default_value_t = DEFAULT_TARGET_ESS, allow_negative_numbers = true,
+          value_parser = parse::target_ess)]
+    pub target_ess: u64,
+    /// The most model runs for the whole run, every stage counted (default: no limit). The chains
+    /// stop before they would exceed it, at the model runs per iteration measured so far.
+    #[arg(long, allow_negative_numbers = true, value_parser = parse::max_evaluations)]
+    pub max_evaluations: Option<u64>,
+    /// Wall-clock seconds for this invocation (default: no limit); checked at every checkpoint. The
+    /// run saves its state, writes its outputs from the draws so far, and `varpost resume`
+    /// continues it (with the same limit, counted anew).
+    #[arg(long, allow_negative_numbers = true, value_parser = parse::time_limit)]
+    pub time_limit: Option<f64>,
 }
 
 impl ChainArgs {
+    /// When the chains stop.
+    pub fn stop(&self) -> StopRule {
+        StopRule {
+            target_ess: self.target_ess,
+            max_evaluations: self.max_evaluations,
+            time_limit: self.time_limit,
+        }
+    }
+
     pub fn config(&self) -> SampleConfig {
         SampleConfig {
             kernel: self.kernel,

@@ -59,6 +59,46 @@ pub fn positive(s: &str) -> Result<f64, String> {
     }
 }
 
+/// The target effective sample size: a whole number from 0 (the fixed --draws) to 1e9.
+pub fn target_ess(s: &str) -> Result<u64, String> {
+    const WHAT: &str = "a whole number from 0 (keep the fixed --draws) to 1000000000";
+    let t = s.trim();
+    if t.starts_with('-') {
+        return Err(format!("negative; give {WHAT}"));
+    }
+    match t.parse::<u64>() {
+        Ok(v) if v <= 1_000_000_000 => Ok(v),
+        Ok(_) => Err(format!("too large; give {WHAT}")),
+        Err(_) => Err(format!("not a whole number; give {WHAT}")),
+    }
+}
+
+/// A budget of model runs: a whole number, 1 or more.
+pub fn max_evaluations(s: &str) -> Result<u64, String> {
+    const WHAT: &str =
+        "a whole number of model runs, 1 or more (leave the option out for no limit)";
+    let t = s.trim();
+    if t.starts_with('-') {
+        return Err(format!("negative; give {WHAT}"));
+    }
+    match t.parse::<u64>() {
+        Ok(v) if v >= 1 => Ok(v),
+        Ok(_) => Err(format!("zero; give {WHAT}")),
+        Err(_) => Err(format!("not a whole number; give {WHAT}")),
+    }
+}
+
+/// A wall-clock limit in seconds: above 0 and at most 1e9.
+pub fn time_limit(s: &str) -> Result<f64, String> {
+    const WHAT: &str = "seconds above 0 and at most 1e9 (leave the option out for no limit)";
+    let v = finite(s, WHAT)?;
+    if v > 0.0 && v <= MAX_SECONDS {
+        Ok(v)
+    } else {
+        Err(format!("out of range; give {WHAT}"))
+    }
+}
+
 /// The HMC integration time: positive and at most 1e6 (the sampler's own limit).
 pub fn integration_time(s: &str) -> Result<f64, String> {
     const WHAT: &str =

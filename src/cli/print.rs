@@ -146,8 +146,26 @@ pub fn sample(o: &SampleOutcome) {
     if let Some(d) = &s.diagnostics {
         println!("  {}", worst_diagnostics(d));
     }
+    stopped(s);
     verdict(&o.diagnosis.verdict);
     evaluations_by_stage(s);
+}
+
+/// What ended the chains and the draws per chain they reached.
+fn stopped(s: &crate::output::Summary) {
+    let Some(smp) = &s.sampling else { return };
+    let (Some(reason), Some(reached)) = (&smp.stop_reason, smp.draws_reached) else {
+        return;
+    };
+    let (target, first) = if smp.target_ess > 0 {
+        (format!(" (target ESS {})", smp.target_ess), "first block")
+    } else {
+        (String::new(), "planned")
+    };
+    println!(
+        "  stopped by: {reason}{target}; {reached} draws per chain ({first} {})",
+        smp.draws_per_chain
+    );
 }
 
 /// The worst R-hat and ESS, never rounded onto the limit they failed.

@@ -35,6 +35,7 @@ pub fn sample(
             draws: chains.laplace_draws,
         },
         skip_check: chains.skip_check,
+        stop: chains.stop(),
         ..RunConfig::new(problem.source(&out)?)
     };
     cfg.validate()?;

@@ -63,7 +63,7 @@ pub use spread::{
 pub use summary::{component_stats, ComponentStats};
 pub use verdict::{
     against_limit, khat_text, AnalysisReading, ChainDivergences, Check, GradientTest, KhatReading,
-    LaplaceFacts, Reason, RunFacts, RunProgress, Status, Verdict, CONDITIONAL_CAUTION,
+    LaplaceFacts, Reason, RunFacts, RunProgress, Status, TargetFacts, Verdict, CONDITIONAL_CAUTION,
     DIVERGENCE_LIMIT, ESS_LIMIT, KHAT_LIMIT, MAX_NAMED, MIN_CHAINS, RHAT_LIMIT,
 };
 pub use weighted::weighted_component_stats;

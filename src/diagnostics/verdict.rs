@@ -132,6 +132,19 @@ pub struct RunFacts<'a> {
     pub divergences: Vec<ChainDivergences>,
     /// `Some` for a run whose chains hold fewer draws than planned.
     pub partial: Option<RunProgress>,
+    /// `Some` for a run that extended its chains towards a target ESS.
+    pub target: Option<TargetFacts>,
+}
+
+/// A run that extended its chains towards a target effective sample size, and what ended it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TargetFacts {
+    /// The bulk and tail ESS every component was to reach.
+    pub target_ess: u64,
+    /// What ended the run, in words ("target met", "max evaluations", "time limit").
+    pub stop: &'static str,
+    /// Whether a limit (of model runs or of time) ended it.
+    pub cut_short: bool,
 }
 
 /// The status of a run (see the module documentation for the rule).
@@ -165,6 +178,7 @@ impl Status {
 #[serde(rename_all = "snake_case")]
 pub enum Reason {
     PartialRun,
+    TargetNotReached,
     GradientTestFailed,
     GradientTestSkipped,
     AnalysisNotConverged,
@@ -179,6 +193,7 @@ impl Reason {
     pub fn describe(self) -> &'static str {
         match self {
             Reason::PartialRun => "the chains have not finished",
+            Reason::TargetNotReached => "a limit ended the run before the target ESS was reached",
             Reason::GradientTestFailed => "the gradient test failed",
             Reason::GradientTestSkipped => "the gradient test was skipped",
             Reason::AnalysisNotConverged => "the analysis did not converge",
@@ -282,7 +297,16 @@ impl Verdict {
         if let Some(a) = facts.analysis.as_ref().filter(|a| !a.converged) {
             f.reason(Reason::AnalysisNotConverged, analysis_sentence(a));
         }
-        let chains_ok = judge_chains(&mut f, &Worst::of(stats), n_chains);
+        let worst = Worst::of(stats);
+        if let Some(t) = facts.target.filter(|t| t.cut_short) {
+            let reached = worst.rhat < RHAT_LIMIT
+                && worst.bulk >= t.target_ess as f64
+                && worst.tail >= t.target_ess as f64;
+            if !reached {
+                f.reason(Reason::TargetNotReached, target_sentence(&t, &worst));
+            }
+        }
+        let chains_ok = judge_chains(&mut f, &worst, n_chains);
         let divergent_fraction = judge_divergences(&mut f, &facts.divergences);
         let (mut spread, mut laplace_adequate, mut khat_limit) = (None, None, None);
         if let Some(l) = facts.laplace {
@@ -395,6 +419,20 @@ fn analysis_sentence(a: &AnalysisReading) -> String {
          and the Hessian, the Laplace approximation and the chains' metric were built away from the \
          minimum. Raise --max-iters (or loosen --grad-rtol) and run again.",
         a.reason, a.iterations
+    )
+}
+
+fn target_sentence(t: &TargetFacts, w: &Worst) -> String {
+    let next = if t.stop == "time limit" {
+        "Continue it with `varpost resume DIR` (the time limit counts anew from there)"
+    } else {
+        "The budget counts the whole run: run again with a larger --max-evaluations"
+    };
+    format!(
+        "The {} ended the run before every component reached the target ESS of {} with R-hat \
+         below {RHAT_LIMIT} (smallest bulk ESS {:.0}, smallest tail ESS {:.0}, largest R-hat {:.3}): \
+         the ensemble is less precise than asked for. {next}.",
+        t.stop, t.target_ess, w.bulk, w.tail, w.rhat
     )
 }
 
@@ -817,6 +855,7 @@ mod tests {
                 4
             ],
             partial: None,
+            target: None,
         }
     }
 
@@ -1066,6 +1105,35 @@ mod tests {
             "{text}"
         );
         assert!(text.contains("12345 model runs"), "{text}");
+    }
+
+    #[test]
+    fn a_limit_that_ended_the_run_short_of_the_target_is_not_green() {
+        let sd = [1.0];
+        let mut f = good_facts(&sd);
+        // The chains pass the verdict's own limits (ESS 800, R-hat 1.002) but not a target of 1000.
+        f.target = Some(TargetFacts {
+            target_ess: 1000,
+            stop: "max evaluations",
+            cut_short: true,
+        });
+        let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+        assert_eq!(v.status, Status::ConvergedWithWarnings);
+        assert_eq!(v.reasons, vec![Reason::TargetNotReached]);
+        assert!(v.text().contains("max evaluations"), "{}", v.text());
+        assert!(v.text().contains("--max-evaluations"), "{}", v.text());
+        // Reached all the same, or ended by the target itself: no reason.
+        for (target_ess, stop, cut_short) in
+            [(500, "time limit", true), (1000, "target met", false)]
+        {
+            f.target = Some(TargetFacts {
+                target_ess,
+                stop,
+                cut_short,
+            });
+            let v = Verdict::judge(&comps(&[1.0]), 4, &f);
+            assert_eq!(v.status, Status::Converged, "{stop}");
+        }
     }
 
     #[test]

@@ -264,6 +264,15 @@ pub struct SamplingSummary {
     pub resumed: bool,
     /// Evaluations served from the evaluation record on resume instead of the model.
     pub replayed_evaluations: u64,
+    /// The target bulk and tail ESS of every component (0: the fixed `draws_per_chain`).
+    #[serde(default)]
+    pub target_ess: u64,
+    /// What ended the chains: "target met", "max evaluations", "time limit" or "draws".
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub stop_reason: Option<String>,
+    /// Draws per chain reached (the fewest over the chains; `draws_per_chain` is the first block).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub draws_reached: Option<u64>,
 }
 
 /// Everything a run reports. Stages that did not run are absent.

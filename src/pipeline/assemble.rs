@@ -28,6 +28,10 @@ pub struct Sampled {
     pub resumed: bool,
     /// Evaluations answered from the record instead of the model.
     pub replayed: u64,
+    /// Why the chains stopped (`None` where not known).
+    pub stop: Option<crate::sampler::StopReason>,
+    /// The target ESS of the run (0: the fixed draws).
+    pub target_ess: u64,
 }
 
 /// The diagnostics of an ensemble: per-component statistics, the E-BFMI of each chain where the draws
@@ -112,6 +116,9 @@ fn sampling_config(r: &StageResults) -> Option<SamplingSummary> {
             .unwrap_or_default(),
         resumed: smp.resumed,
         replayed_evaluations: smp.replayed,
+        target_ess: smp.target_ess,
+        stop_reason: smp.stop.map(|s| s.name().to_string()),
+        draws_reached: smp.result.chains.iter().map(|c| c.draws).min(),
     })
 }
 

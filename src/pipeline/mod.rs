@@ -7,6 +7,7 @@
 //! - [`stages`]: gradient test, analysis, Laplace approximation and metric, Laplace check;
 //! - [`runs`]: `check`, `map` and `hessian`;
 //! - [`sample`]: the whole pipeline to an ensemble, and `resume`;
+//! - [`extend`]: the chains extended in blocks until the target ESS or a limit;
 //! - [`diagnose`]: diagnostics of an ensemble (chains or weighted draws);
 //! - [`report`]: components.csv, ensemble.nc, plots and report.html;
 //! - [`demo`]: every stage on the embedded scenario.
@@ -15,6 +16,7 @@ pub mod assemble;
 pub mod choose;
 pub mod demo;
 pub mod diagnose;
+pub mod extend;
 pub mod load;
 pub mod report;
 pub mod runs;

@@ -11,7 +11,7 @@ use super::sample::{read_run, SampleOutcome};
 use crate::config::RunConfig;
 use crate::diagnostics::{
     autocorrelation, khat_text, ComponentStats, KhatReading, LaplaceFacts, RunFacts, RunProgress,
-    Status, Verdict, CONDITIONAL_CAUTION,
+    Status, TargetFacts, Verdict, CONDITIONAL_CAUTION,
 };
 use crate::error::{Error, Result};
 use crate::output::ensemble::{write_ensemble, EnsembleInfo, Member};
@@ -23,7 +23,7 @@ use crate::output::summary::CAUTION;
 use crate::output::table::{write_components, ComponentTable};
 use crate::output::{worst_first, Summary};
 use crate::sampler::draws::FLAG_DIVERGENT;
-use crate::sampler::{ChainDraws, Checkpoint, Ensemble, WeightedDraws};
+use crate::sampler::{ChainDraws, Checkpoint, Ensemble, StopReason, WeightedDraws};
 
 /// What the report found and wrote.
 pub struct ReportOutcome {
@@ -168,8 +168,26 @@ fn verdict_from_disk(
         names: names.as_deref(),
         divergences,
         partial: progress,
+        target: target_facts(run, summary),
     };
     Ok(Verdict::judge(stats, run.sampler.chains, &facts))
+}
+
+/// The target ESS of a run that extended its chains, and what ended it, from summary.json.
+fn target_facts(run: &RunConfig, summary: &Summary) -> Option<TargetFacts> {
+    let stop = summary.sampling.as_ref()?.stop_reason.as_deref()?;
+    let stop = [
+        StopReason::TargetMet,
+        StopReason::MaxEvaluations,
+        StopReason::TimeLimit,
+    ]
+    .into_iter()
+    .find(|r| r.name() == stop)?;
+    (run.stop.target_ess > 0).then_some(TargetFacts {
+        target_ess: run.stop.target_ess,
+        stop: stop.name(),
+        cut_short: stop.cut_short(),
+    })
 }
 
 /// The error for a run whose chains hold too few draws for any diagnostic yet, saying how far it got.
@@ -203,7 +221,15 @@ fn run_progress(
     draws: &ChainDraws,
 ) -> Option<RunProgress> {
     let draws_per_chain: Vec<u64> = draws.files().iter().map(|f| f.records).collect();
-    let planned = run.sampler.draws;
+    // A run extended towards a target whose chains a limit ended (summary.json says where) is not
+    // partial: the verdict says the target was not reached.
+    let ended_at = summary.sampling.as_ref().and_then(|s| s.draws_reached);
+    if run.stop.target_ess > 0 && ended_at.is_some_and(|r| draws_per_chain.iter().all(|&d| d >= r))
+    {
+        return None;
+    }
+    let extra = Checkpoint::load(dir).map_or(0, |c| c.extra_draws);
+    let planned = run.sampler.draws + extra;
     if draws_per_chain.iter().all(|&d| d >= planned) {
         return None;
     }

@@ -8,21 +8,24 @@
 
 use std::path::Path;
 use std::sync::Arc;
+use std::time::Instant;
 
 use super::assemble::{self, laplace_summary, Diagnosis, Sampled, StageResults};
 use super::choose::choose_kernel;
 use super::diagnose::diagnose;
+use super::extend::{run_chains, Before, Chained};
 use super::load::Loaded;
 use super::stages::{self, StageCounter};
 use crate::config::RunConfig;
-use crate::diagnostics::{LaplaceFacts, RunFacts, Verdict};
+use crate::diagnostics::{LaplaceFacts, RunFacts, RunProgress, TargetFacts, Verdict};
 use crate::error::{Error, Result};
 use crate::interrupt::Interrupt;
 use crate::output::Summary;
 use crate::precond::Preconditioner;
+use crate::problem::EvalCounts;
 use crate::sampler::checkpoint::checkpoint_path;
 use crate::sampler::{
-    self, ChainDraws, Checkpoint, Ensemble, Progress, SampleConfig, SampleResult, Target,
+    ChainDraws, Checkpoint, Ensemble, Progress, SampleConfig, SampleResult, StopReason, Target,
 };
 
 const RECORD_FILE: &str = "evaluations.vprec";
@@ -49,6 +52,7 @@ pub fn run_sample(
     interrupt: &Interrupt,
     progress: &dyn Progress,
 ) -> Result<SampleOutcome> {
+    let started = Instant::now();
     cfg.validate()?;
     prepare_folder(cfg, out, resume)?;
     let problem = &loaded.problem;
@@ -109,20 +113,27 @@ pub fn run_sample(
     assemble::summary(loaded, command, &results, pre_sampling, &counter.by_stage).write(out)?;
 
     let target = Target::new(problem, &loaded.name, x_star, metric.clone())?;
-    let result = chains_stage(&target, cfg, out, resume, interrupt, progress)?;
+    let ctx = Before {
+        started,
+        runs: pre_sampling.model_runs(),
+    };
+    let Chained { result, stop } =
+        chains_stage(&target, cfg, out, resume, ctx, interrupt, progress)?;
     let mut by_stage = counter.by_stage.clone();
     by_stage.insert("warmup".into(), result.counts_warmup);
     by_stage.insert("sampling".into(), result.counts_sampling);
     let evaluations = pre_sampling
         .plus(&result.counts_warmup)
         .plus(&result.counts_sampling);
-    let diagnosis = diagnosis_stage(out, loaded, cfg, &results, &result)?;
+    let diagnosis = diagnosis_stage(out, loaded, cfg, &results, &result, stop, evaluations)?;
     results.sampling = Some(Sampled {
         result,
         config: cfg.sampler.clone(),
         metric: metric.kind().into(),
         resumed: resume,
         replayed: problem.inner().replayed(),
+        stop: Some(stop),
+        target_ess: cfg.stop.target_ess,
     });
     results.diagnosis = Some(diagnosis);
     let summary = assemble::summary(loaded, command, &results, evaluations, &by_stage);
@@ -155,21 +166,23 @@ fn prepare_folder(cfg: &RunConfig, out: &Path, resume: bool) -> Result<()> {
     cfg.write(out)
 }
 
-/// The chains, continued from the checkpoint when resuming.
+/// The chains, continued from the checkpoint when resuming, until the run's stop rule ends them;
+/// `before`: when this invocation began and the model runs before the chains.
 fn chains_stage(
     target: &Target<'_>,
     cfg: &RunConfig,
     out: &Path,
     resume: bool,
+    before: Before,
     interrupt: &Interrupt,
     progress: &dyn Progress,
-) -> Result<SampleResult> {
+) -> Result<Chained> {
     let ck = if resume && checkpoint_path(out).exists() {
         Some(Checkpoint::load(out)?)
     } else {
         None
     };
-    sampler::run(target, &cfg.sampler, out, ck, interrupt, progress)
+    run_chains(target, cfg, out, ck, before, interrupt, progress)
 }
 
 /// Diagnostics of the chains' draws and the verdict on the whole run: the gradient test, the analysis,
@@ -181,6 +194,8 @@ fn diagnosis_stage(
     cfg: &RunConfig,
     results: &StageResults,
     sampled: &SampleResult,
+    stop: StopReason,
+    evaluations: EvalCounts,
 ) -> Result<Diagnosis> {
     let ensemble = Ensemble::Chains(ChainDraws::open(out, cfg.sampler.chains)?);
     let (stats, ebfmi) = diagnose(&ensemble)?;
@@ -204,7 +219,17 @@ fn diagnosis_stage(
             sampled.chains.iter().map(|c| (c.divergences, c.draws)),
             cfg.sampler.thin,
         ),
-        partial: None,
+        // Fixed draws a limit kept the chains from: the run is partial, and `resume` continues it.
+        partial: (cfg.stop.target_ess == 0 && stop.cut_short()).then(|| RunProgress {
+            draws_per_chain: sampled.chains.iter().map(|c| c.draws).collect(),
+            planned: cfg.sampler.draws,
+            model_runs: evaluations.model_runs(),
+        }),
+        target: (cfg.stop.target_ess > 0).then_some(TargetFacts {
+            target_ess: cfg.stop.target_ess,
+            stop: stop.name(),
+            cut_short: stop.cut_short(),
+        }),
     };
     let verdict = Verdict::judge(&stats, cfg.sampler.chains, &facts);
     Ok(Diagnosis {

@@ -18,6 +18,7 @@
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Instant;
 
 use rand::SeedableRng;
 use rayon::prelude::*;
@@ -46,6 +47,30 @@ impl<F: Fn(usize, u64, u64) + Sync> Progress for F {
     fn advance(&self, chain: usize, done: u64, total: u64) {
         self(chain, done, total)
     }
+}
+
+/// Where a run may stop before its planned end. Both are checked between segments (every
+/// `checkpoint_every` iterations and at the warm-up's barriers), where every chain is at the same
+/// iteration and the state is saved.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Limits {
+    /// Stop at the first segment end after this instant.
+    pub deadline: Option<Instant>,
+    /// The model runs the chains may spend in all (warm-up, start points and sampling, over every
+    /// block). Each segment is cut short so that, at the model runs per iteration measured so far,
+    /// it stays within them.
+    pub max_chain_runs: Option<u64>,
+}
+
+/// Why the chains stopped.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Ended {
+    /// Every chain holds all its draws.
+    Finished,
+    /// [`Limits::max_chain_runs`] left no room for another iteration.
+    MaxEvaluations,
+    /// [`Limits::deadline`] had passed.
+    TimeLimit,
 }
 
 /// What one chain reports.
@@ -123,6 +148,8 @@ struct Ctx<'t, 'a> {
     interrupt: &'t Interrupt,
     abort: &'t AtomicBool,
     progress: &'t dyn Progress,
+    /// Draws per chain beyond `config.draws` (the blocks added by an extension).
+    extra_draws: u64,
 }
 
 impl Runner {
@@ -219,7 +246,7 @@ impl Runner {
     fn advance(&mut self, until: u64, ctx: &Ctx<'_, '_>, plan: Option<&WarmupPlan>) -> Result<()> {
         let cfg = ctx.config;
         let warmup_end = plan.map_or(cfg.warmup, |p| p.end);
-        let total = warmup_end + cfg.draws * cfg.thin;
+        let total = warmup_end + (cfg.draws + ctx.extra_draws) * cfg.thin;
         let fixed_metric = match plan {
             Some(p) => p.metric.clone(),
             None => Metric::unit(self.state.u.len()),
@@ -338,8 +365,43 @@ pub fn run(
     interrupt: &Interrupt,
     progress: &dyn Progress,
 ) -> Result<SampleResult> {
+    let plan = Extension::default();
+    run_extended(target, config, out_dir, resume, &plan, interrupt, progress).map(|(r, _)| r)
+}
+
+/// How far [`run_extended`] takes the chains.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Extension {
+    /// Draws per chain beyond `config.draws`, in all; `None` keeps the checkpoint's (0 for a new
+    /// run). It may not be below what the checkpoint already asked for.
+    pub extra_draws: Option<u64>,
+    /// Where to stop before the end.
+    pub limits: Limits,
+}
+
+/// [`run`] with an extension: the chains run to `config.draws + extra_draws` draws each (continuing
+/// from `resume`, which may be a finished run), or until a limit of `ext` stops them, their state
+/// saved. Returns the result of the draws held and why the chains stopped.
+pub fn run_extended(
+    target: &Target<'_>,
+    config: &SampleConfig,
+    out_dir: &Path,
+    resume: Option<Checkpoint>,
+    ext: &Extension,
+    interrupt: &Interrupt,
+    progress: &dyn Progress,
+) -> Result<(SampleResult, Ended)> {
     let kernel = config.build_kernel()?;
     std::fs::create_dir_all(out_dir).map_err(|e| Error::io(out_dir, e))?;
+    let saved_extra = resume.as_ref().map_or(0, |c| c.extra_draws);
+    let extra_draws = ext.extra_draws.unwrap_or(saved_extra);
+    if extra_draws < saved_extra {
+        return Err(Error::Config(format!(
+            "the run in {} already extends its chains by {saved_extra} draws; an extension cannot \
+             take back draws (asked for {extra_draws})",
+            out_dir.display()
+        )));
+    }
     let abort = AtomicBool::new(false);
     let ctx = Ctx {
         target,
@@ -348,15 +410,19 @@ pub fn run(
         interrupt,
         abort: &abort,
         progress,
+        extra_draws,
     };
     let mut chains = match resume {
         Some(ck) => Chains::restore(ck, &ctx, out_dir)?,
         None => Chains::start(&ctx, out_dir)?,
     };
+    chains.extra_draws = extra_draws;
     chains.save(&ctx, out_dir, false)?;
-    chains.run_segments(&ctx, out_dir)?;
-    chains.save(&ctx, out_dir, true)?;
-    Ok(chains.result(&ctx, out_dir))
+    let ended = chains.run_segments(&ctx, out_dir, &ext.limits)?;
+    if ended == Ended::Finished {
+        chains.save(&ctx, out_dir, true)?;
+    }
+    Ok((chains.result(&ctx, out_dir), ended))
 }
 
 /// All chains of a run and the evaluations spent so far, by phase.
@@ -367,6 +433,8 @@ struct Chains {
     /// The pooled warm-up (`None` for the other ways of learning the metric, and kernels without a
     /// step size).
     plan: Option<WarmupPlan>,
+    /// Draws per chain beyond `config.draws`.
+    extra_draws: u64,
 }
 
 impl Chains {
@@ -397,6 +465,7 @@ impl Chains {
                 (true, false) => Some(WarmupPlan::burn_in(ctx.config.warmup, n)),
                 (false, _) => None,
             },
+            extra_draws: 0,
         })
     }
 
@@ -415,6 +484,7 @@ impl Chains {
             counts_warmup: ck.counts_warmup,
             counts_sampling: ck.counts_sampling,
             plan: ck.plan,
+            extra_draws: ck.extra_draws,
         })
     }
 
@@ -435,22 +505,39 @@ impl Chains {
             counts_warmup: self.counts_warmup,
             counts_sampling: self.counts_sampling,
             plan: self.plan.clone(),
+            extra_draws: self.extra_draws,
             complete,
         }
         .save(out_dir)
     }
 
     /// Advances all chains segment by segment to the end of the run, saving after each segment. Stops
-    /// with the first chain's error or at an interrupt, after saving.
-    fn run_segments(&mut self, ctx: &Ctx<'_, '_>, out_dir: &Path) -> Result<()> {
+    /// with the first chain's error or at an interrupt, after saving; stops early (and says why)
+    /// where `limits` leave no room.
+    fn run_segments(
+        &mut self,
+        ctx: &Ctx<'_, '_>,
+        out_dir: &Path,
+        limits: &Limits,
+    ) -> Result<Ended> {
         let config = ctx.config;
         loop {
             let total = self.total(config);
             let lowest = self.lowest_iteration().unwrap_or(total);
             if lowest >= total {
-                return Ok(());
+                return Ok(Ended::Finished);
             }
-            let until = self.segment_end(lowest, config);
+            if limits.deadline.is_some_and(|d| Instant::now() >= d) {
+                return Ok(Ended::TimeLimit);
+            }
+            let mut until = self.segment_end(lowest, config);
+            if let Some(max) = limits.max_chain_runs {
+                match self.affordable(max) {
+                    Some(0) => return Ok(Ended::MaxEvaluations),
+                    Some(n) => until = until.min(lowest.saturating_add(n)),
+                    None => {}
+                }
+            }
             let outcomes = self.advance_all(until, ctx);
             self.barrier()?;
             self.save(ctx, out_dir, false)?;
@@ -468,6 +555,33 @@ impl Chains {
         }
     }
 
+    /// Model runs spent by the chains so far (start points, warm-up and sampling).
+    fn chain_runs(&self) -> u64 {
+        self.counts_warmup.model_runs() + self.counts_sampling.model_runs()
+    }
+
+    /// How many more iterations every chain can do within `max` model runs for the chains, at the
+    /// model runs per iteration measured so far: one before any iteration (to measure), `Some(0)`
+    /// when the budget is spent.
+    fn affordable(&self, max: u64) -> Option<u64> {
+        let used = self.chain_runs();
+        if used >= max {
+            return Some(0);
+        }
+        let done: u64 = self.runners.iter().map(|r| r.iteration).sum();
+        if done == 0 {
+            return Some(1);
+        }
+        let per_iteration = used as f64 / done as f64;
+        let chains = self.runners.len().max(1) as f64;
+        let room = (max - used) as f64 / (per_iteration * chains);
+        Some(if room.is_finite() {
+            room.floor() as u64
+        } else {
+            u64::MAX
+        })
+    }
+
     /// Where the warm-up ends: fixed, or where the pooled warm-up settled.
     fn warmup_end(&self, config: &SampleConfig) -> u64 {
         self.plan.as_ref().map_or(config.warmup, |p| p.end)
@@ -475,7 +589,7 @@ impl Chains {
 
     /// Total iterations per chain.
     fn total(&self, config: &SampleConfig) -> u64 {
-        self.warmup_end(config) + config.draws * config.thin
+        self.warmup_end(config) + (config.draws + self.extra_draws) * config.thin
     }
 
     /// The end of the segment that starts at iteration `lowest`: the next multiple of the checkpoint

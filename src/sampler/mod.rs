@@ -6,7 +6,8 @@
 //!   diagnostics only, and the step size is passed in so that the warm-up needs no rebuild:
 //!   [`mala`], [`hmc`] (with [`integrator`]), [`laplace_mh`];
 //! - [`chain`]: running the chains in parallel, with warm-up, streaming and checkpoints
-//!   ([`run`]); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
+//!   ([`run`], and [`run_extended`] for chains extended by more draws or stopped by [`Limits`]);
+//!   [`stop`] (when a run stops: fixed draws or a target ESS, and the next block's size); [`draws`] (the per-chain draws files and their reader), [`welford`] (running moments),
 //!   [`checkpoint`] and [`state`] (what a checkpoint saves of one chain).
 //!
 //! # Example
@@ -47,15 +48,19 @@ pub mod laplace_mh;
 pub mod mala;
 pub mod nuts;
 pub mod state;
+pub mod stop;
 pub mod target;
 pub mod welford;
 
 pub use crate::adapt::Metric;
-pub use chain::{run, ChainSummary, Progress, SampleResult};
+pub use chain::{
+    run, run_extended, ChainSummary, Ended, Extension, Limits, Progress, SampleResult,
+};
 pub use checkpoint::Checkpoint;
 pub use config::{HmcSettings, IndependenceSettings, KernelKind, MetricLearning, SampleConfig};
 pub use draws::{component_per_chain, open_chains, DrawRecord, DrawsFile};
 pub use ensemble::{ChainDraws, Ensemble, WeightedDraws};
+pub use stop::{StopReason, StopRule};
 pub use target::{CountedProblem, Target};
 pub use welford::Welford;
 

@@ -66,7 +66,10 @@ impl Problem for Toy {
 }
 
 fn away(t: &Toy) -> Vec<f64> {
-    t.m.iter().enumerate().map(|(i, v)| v + 2.0 + 0.5 * i as f64).collect()
+    t.m.iter()
+        .enumerate()
+        .map(|(i, v)| v + 2.0 + 0.5 * i as f64)
+        .collect()
 }
 
 fn show(r: &GradientReport) -> String {
@@ -88,7 +91,11 @@ fn a_right_toy_gradient_passes_away_from_and_at_its_minimum() {
         let r = gradient_test(&t, &t.m, seed).unwrap();
         assert!(r.passed, "at the minimum, seed {seed}: {}", show(&r));
         assert_eq!(r.criterion, Criterion::RemainderOrder, "{}", show(&r));
-        assert!(r.verdict.contains("criterion: remainder order"), "{}", r.verdict);
+        assert!(
+            r.verdict.contains("criterion: remainder order"),
+            "{}",
+            r.verdict
+        );
     }
 }
 
@@ -161,7 +168,12 @@ fn lorenz96_passes_at_its_analysis_by_the_remainder_order() {
     let w = WrongL96(Box::new(lorenz96().problem), Bug::Offset);
     let r = gradient_test(&w, &m.x, 3).unwrap();
     assert!(!r.passed, "{}", show(&r));
-    assert_eq!(r.fd_worst[0].name.as_deref(), Some("x5"), "{:?}", r.fd_worst);
+    assert_eq!(
+        r.fd_worst[0].name.as_deref(),
+        Some("x5"),
+        "{:?}",
+        r.fd_worst
+    );
 }
 
 #[test]
@@ -180,20 +192,46 @@ fn check_passes_on_the_calibration_scenario_that_once_failed_its_slope() {
     let d = temp_dir("check-calibration");
     let data = d.join("data");
     let o = run(&[
-        "synth", "--problem", "lorenz96", "--set", "synth=calibration", "--set", "seed=10195",
-        "--set", "n=10", "--set", "corr_len=1", "--set", "estimate_forcing=true", "--quiet", "--out",
+        "synth",
+        "--problem",
+        "lorenz96",
+        "--set",
+        "synth=calibration",
+        "--set",
+        "seed=10195",
+        "--set",
+        "n=10",
+        "--set",
+        "corr_len=1",
+        "--set",
+        "estimate_forcing=true",
+        "--quiet",
+        "--out",
         data.to_str().unwrap(),
     ]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let set = format!("data={}", data.display());
     let out = d.join("check");
     let o = run(&[
-        "check", "--problem", "lorenz96", "--set", &set, "--quiet", "--out",
+        "check",
+        "--problem",
+        "lorenz96",
+        "--set",
+        &set,
+        "--quiet",
+        "--out",
         out.to_str().unwrap(),
     ]);
     let stdout = String::from_utf8_lossy(&o.stdout);
-    assert!(o.status.success(), "{stdout}\n{}", String::from_utf8_lossy(&o.stderr));
-    assert!(stdout.contains("gradient correct (criterion: ratio)"), "{stdout}");
+    assert!(
+        o.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(
+        stdout.contains("gradient correct (criterion: ratio)"),
+        "{stdout}"
+    );
     assert!(stdout.contains("worst components x"), "{stdout}");
     let s = read_json(&out.join("summary.json"));
     assert_eq!(s["check"]["criterion"], "ratio");
@@ -203,7 +241,13 @@ fn check_passes_on_the_calibration_scenario_that_once_failed_its_slope() {
     // At the analysis: the remainder's order decides.
     let map = d.join("map");
     let o = run(&[
-        "map", "--problem", "lorenz96", "--set", &set, "--quiet", "--out",
+        "map",
+        "--problem",
+        "lorenz96",
+        "--set",
+        &set,
+        "--quiet",
+        "--out",
         map.to_str().unwrap(),
     ]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
@@ -217,11 +261,23 @@ fn check_passes_on_the_calibration_scenario_that_once_failed_its_slope() {
     std::fs::write(&start, x.join(",")).unwrap();
     let out = d.join("check-analysis");
     let o = run(&[
-        "check", "--problem", "lorenz96", "--set", &set, "--quiet", "--start",
-        start.to_str().unwrap(), "--out", out.to_str().unwrap(),
+        "check",
+        "--problem",
+        "lorenz96",
+        "--set",
+        &set,
+        "--quiet",
+        "--start",
+        start.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
     ]);
     let stdout = String::from_utf8_lossy(&o.stdout);
-    assert!(o.status.success(), "{stdout}\n{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        o.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     assert!(stdout.contains("criterion: remainder order"), "{stdout}");
     let s = read_json(&out.join("summary.json"));
     assert_eq!(s["check"]["criterion"], "remainder-order");
@@ -229,11 +285,31 @@ fn check_passes_on_the_calibration_scenario_that_once_failed_its_slope() {
     // A sampling run started at the analysis gets past its gradient test (exit code 3 is that test).
     let out = d.join("sample");
     let o = run(&[
-        "sample", "--problem", "lorenz96", "--set", &set, "--quiet", "--start",
-        start.to_str().unwrap(), "--chains", "2", "--draws", "50", "--warmup", "50",
-        "--laplace-draws", "0", "--out", out.to_str().unwrap(),
+        "sample",
+        "--problem",
+        "lorenz96",
+        "--set",
+        &set,
+        "--quiet",
+        "--start",
+        start.to_str().unwrap(),
+        "--chains",
+        "2",
+        "--draws",
+        "50",
+        "--warmup",
+        "50",
+        "--laplace-draws",
+        "0",
+        "--out",
+        out.to_str().unwrap(),
     ]);
-    assert_ne!(o.status.code(), Some(3), "{}", String::from_utf8_lossy(&o.stderr));
+    assert_ne!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     let s = read_json(&out.join("summary.json"));
     assert_eq!(s["check"]["passed"], true);
     assert_eq!(s["check"]["criterion"], "remainder-order");

@@ -229,6 +229,8 @@ fn ensemble_netcdf_reads_back_in_python_with_the_summary_values() {
         "200",
         "--warmup",
         "200",
+        "--target-ess",
+        "0",
         "--quiet",
         "--out",
         out.to_str().unwrap(),
@@ -422,6 +424,8 @@ fn a_panic_inside_sampling_ends_the_process_with_an_internal_error_and_resume_fi
             "100",
             "--warmup",
             "100",
+            "--target-ess",
+            "0",
             "--out",
         ])
         .arg(&out)
@@ -484,6 +488,8 @@ fn with_stderr_captured_sampling_prints_plain_timestamped_progress_lines() {
         "100",
         "--warmup",
         "100",
+        "--target-ess",
+        "0",
         "--out",
         out.to_str().unwrap(),
     ]);

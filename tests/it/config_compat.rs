@@ -31,6 +31,25 @@ fn a_first_release_record_reads_with_its_settings() {
     assert_eq!(c.metric, MetricKind::Laplace);
     assert_eq!(c.laplace_check.draws, 200);
     assert!(c.skip_check);
+    // Written before runs could extend their chains: it keeps its fixed draws, without limits.
+    assert_eq!(c.stop.target_ess, 0);
+    assert_eq!(c.stop.max_evaluations, None);
+    assert_eq!(c.stop.time_limit, None);
+}
+
+/// A record with a stop rule keeps it; a bad one is refused by name.
+#[test]
+fn the_stop_rule_is_recorded_and_checked() {
+    let mut v = fixture();
+    v["stop"] =
+        serde_json::json!({ "target_ess": 800, "max_evaluations": 50000, "time_limit": 60.0 });
+    let c = read(&v, "stop-rule").unwrap();
+    assert_eq!(c.stop.target_ess, 800);
+    assert_eq!(c.stop.max_evaluations, Some(50000));
+    assert_eq!(c.stop.time_limit, Some(60.0));
+    v["stop"]["time_limit"] = serde_json::json!(-1.0);
+    let e = read(&v, "stop-rule-bad").unwrap_err().to_string();
+    assert!(e.contains("--time-limit"), "{e}");
 }
 
 #[test]

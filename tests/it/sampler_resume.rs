@@ -628,3 +628,91 @@ fn edited_checkpoints_are_refused_naming_the_field() {
     Checkpoint::load(&dir).unwrap();
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Runs `cfg` on the correlated Gaussian into `dir` with extension `ext`, resuming if `resume`.
+fn extend_gauss(
+    cfg: &SampleConfig,
+    dir: &Path,
+    resume: bool,
+    ext: &varpost::sampler::Extension,
+) -> (SampleResult, varpost::sampler::Ended) {
+    let g = Gaussian::correlated(4);
+    let h = g.a.clone();
+    let m = g.mean.clone();
+    let c = Counted::new(g);
+    let t = Target::new(&c, "gauss4", m, Gaussian::precond(&h)).unwrap();
+    let ck = resume.then(|| Checkpoint::load(dir).unwrap());
+    varpost::sampler::run_extended(&t, cfg, dir, ck, ext, &Interrupt::new(), &|_, _, _| {}).unwrap()
+}
+
+/// A finished run extended by E draws per chain holds the same draws as a run of draws + E from the
+/// start; a budget of model runs for the chains stops them before it is spent.
+#[test]
+fn an_extended_run_draws_what_a_longer_run_draws_and_a_budget_stops_it() {
+    use varpost::sampler::{Ended, Extension, Limits};
+    let short = cfg(KernelKind::Hmc);
+    let long = SampleConfig {
+        draws: short.draws + 70,
+        ..short.clone()
+    };
+    let (long_dir, reference) = reference_run("ext-long", &long);
+    let dir = temp_dir("ext-short");
+    let (_, ended) = extend_gauss(&short, &dir, false, &Extension::default());
+    assert_eq!(ended, Ended::Finished);
+    let more = Extension {
+        extra_draws: Some(70),
+        ..Default::default()
+    };
+    let (r, ended) = extend_gauss(&short, &dir, true, &more);
+    assert_eq!(ended, Ended::Finished);
+    same_numbers(&reference, &r);
+    for c in 0..3 {
+        let f = format!("chain-{c}.draws");
+        assert!(
+            std::fs::read(long_dir.join(&f)).unwrap() == std::fs::read(dir.join(&f)).unwrap(),
+            "{f} differs"
+        );
+    }
+    assert_eq!(Checkpoint::load(&dir).unwrap().extra_draws, 70);
+    // Taking draws back is refused.
+    let g = Gaussian::correlated(4);
+    let h = g.a.clone();
+    let mean = g.mean.clone();
+    let c = Counted::new(g);
+    let t = Target::new(&c, "gauss4", mean, Gaussian::precond(&h)).unwrap();
+    let fewer = Extension {
+        extra_draws: Some(10),
+        ..Default::default()
+    };
+    let ck = Checkpoint::load(&dir).unwrap();
+    let e = varpost::sampler::run_extended(
+        &t,
+        &short,
+        &dir,
+        Some(ck),
+        &fewer,
+        &Interrupt::new(),
+        &|_, _, _| {},
+    )
+    .unwrap_err();
+    assert!(e.to_string().contains("cannot take back"), "{e}");
+    // A budget: the chains stop within it.
+    let budget_dir = temp_dir("ext-budget");
+    let used = reference.counts_warmup.model_runs() + reference.counts_sampling.model_runs();
+    let max = used / 2;
+    let capped = Extension {
+        extra_draws: None,
+        limits: Limits {
+            max_chain_runs: Some(max),
+            ..Default::default()
+        },
+    };
+    let (r, ended) = extend_gauss(&long, &budget_dir, false, &capped);
+    assert_eq!(ended, Ended::MaxEvaluations);
+    let spent = r.counts_warmup.model_runs() + r.counts_sampling.model_runs();
+    assert!(spent <= max, "{spent} model runs, budget {max}");
+    assert!(r.draws < reference.draws);
+    for d in [long_dir, dir, budget_dir] {
+        std::fs::remove_dir_all(d).ok();
+    }
+}

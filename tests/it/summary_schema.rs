@@ -51,10 +51,10 @@ fn sample_summary_schema() {
         "sample",
         "--problem",
         "linear-gaussian",
-        // HMC, so that step sizes, E-BFMI and the pooled warm-up's fields are filled; enough draws for
-        // the chains to pass their checks, so that every verdict field is filled.
+        // HMC, whose chains fill every per-chain field (step size, E-BFMI, the pooled warm-up's).
         "--kernel",
         "hmc",
+        // Enough draws for the chains to pass their checks, so that every verdict field is filled.
         "--draws",
         "1000",
         "--warmup",

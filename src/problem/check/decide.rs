@@ -176,7 +176,10 @@ fn fail_text(f: &Facts) -> String {
         ));
     }
     if f.order_ok == Some(false) {
-        why.push(format!("the remainder falls as {}, not alpha^2", f.order_text()));
+        why.push(format!(
+            "the remainder falls as {}, not alpha^2",
+            f.order_text()
+        ));
     }
     if let Some(c) = f.fd.filter(|c| c.max_rel_error >= FD_TOL) {
         why.push(format!(

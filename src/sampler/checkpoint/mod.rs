@@ -55,6 +55,10 @@ pub struct Checkpoint {
     /// The pooled warm-up's plan (absent from version 1 and from runs that do not pool).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub plan: Option<WarmupPlan>,
+    /// Draws per chain beyond `config.draws`, added by extensions of the run (absent, 0, in files
+    /// written before extensions existed and in runs never extended).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub extra_draws: u64,
     /// Whether the run had finished when this was written.
     pub complete: bool,
 }
@@ -173,6 +177,10 @@ impl Checkpoint {
         }
         Ok(())
     }
+}
+
+fn is_zero(v: &u64) -> bool {
+    *v == 0
 }
 
 /// The format version and the payload of a checkpoint file, after checking the header and the

@@ -87,6 +87,7 @@ fn fresh(kernel: KernelKind, dim: usize, chains: usize) -> Checkpoint {
         counts_warmup: Default::default(),
         counts_sampling: Default::default(),
         plan: None,
+        extra_draws: 0,
         complete: false,
     }
 }
@@ -254,4 +255,25 @@ fn fuzz_checkpoint_decoder() {
         make,
         |b| Checkpoint::decode(path, b).is_ok(),
     );
+}
+
+#[test]
+fn the_run_length_counts_the_extension() {
+    let p = PathBuf::from("x");
+    // Warm-up 10 and 5 draws: 15 iterations; extended by 7 draws: 22.
+    for (extra, total) in [(0u64, 15u64), (7, 22)] {
+        let mut ck = fresh(KernelKind::Mala, 2, 1);
+        ck.extra_draws = extra;
+        ck.complete = true;
+        let e = Checkpoint::decode(&p, &bytes_of(&ck))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains(&format!("iteration is 0 of {total}")), "{e}");
+        // It round-trips, and a run never extended writes no such field.
+        ck.complete = false;
+        let back = Checkpoint::decode(&p, &bytes_of(&ck)).unwrap();
+        assert_eq!(back.extra_draws, extra);
+        let text = String::from_utf8(bytes_of(&ck)).unwrap();
+        assert_eq!(text.contains("extra_draws"), extra > 0);
+    }
 }

@@ -48,7 +48,11 @@ pub(super) fn validate(ck: &Checkpoint) -> Result<(), String> {
         warmup,
         warmup_max: config.warmup,
         thin: config.thin,
-        total: warmup + config.draws * config.thin,
+        total: warmup
+            + config
+                .draws
+                .saturating_add(ck.extra_draws)
+                .saturating_mul(config.thin),
         uses_gradient: kernel.spec(ck.dim).uses_gradient,
         seed: ChainRng::seed_from_u64(config.seed).get_seed(),
     };
@@ -68,7 +72,8 @@ pub(super) fn validate(ck: &Checkpoint) -> Result<(), String> {
 fn check_chain(c: usize, ch: &ChainCheckpoint, e: &Expect) -> Result<(), String> {
     if ch.iteration > e.total {
         return Err(format!(
-            "iteration is {}, beyond the run's {} iterations (warm-up and draws × thin)",
+            "iteration is {}, beyond the run's {} iterations (warm-up and draws × thin, extensions \
+             included)",
             ch.iteration, e.total
         ));
     }
