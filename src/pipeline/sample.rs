@@ -75,36 +75,8 @@ pub fn run_sample(
     let lap_precond: Arc<dyn Preconditioner + '_> = Arc::from(lap.precond);
     let metric = stages::metric_stage(problem, &analysis.map, &lap_precond, lap_method, cfg)?;
     counter.end("hessian");
-    results.laplace_check = stages::laplace_check_stage(
-        problem,
-        &loaded.name,
-        &analysis.map,
-        lap_precond.clone(),
-        cfg.laplace_check.draws,
-        cfg.check_seed,
-    )?;
-    let check_target = Target::new(problem, &loaded.name, analysis.map.x.clone(), lap_precond)?;
-    let lap_var = results
-        .laplace
-        .as_ref()
-        .map(|l| l.variance.clone())
-        .unwrap_or_default();
-    let choice = choose_kernel(
-        cfg.sampler.kernel,
-        &mut results.laplace_check,
-        Some(&check_target),
-        &lap_var,
-        cfg.check_seed,
-    )?;
+    let cfg = &check_and_choose(loaded, &analysis.map, lap_precond, cfg, &mut results)?;
     counter.end("laplace_check");
-    let cfg = &RunConfig {
-        sampler: SampleConfig {
-            kernel: choice.kernel,
-            ..cfg.sampler.clone()
-        },
-        ..cfg.clone()
-    };
-    results.kernel_reason = Some(choice.reason);
     let x_star = analysis.map.x.clone();
     results.analysis = Some(analysis);
     let pre_sampling = problem.counts();
@@ -148,6 +120,48 @@ pub fn run_sample(
         }),
         _ => Err(Error::Internal("the sampling results went missing".into())),
     }
+}
+
+/// The Laplace check at the analysis `map` (drawn on the problem whitened by `lap_precond`) and the
+/// kernel it chooses for `--kernel auto` ([`choose_kernel`], which may grow the check); both go into
+/// `results`. Returns the run's settings with the kernel that samples.
+fn check_and_choose<'p>(
+    loaded: &'p Loaded,
+    map: &crate::optimize::MapResult,
+    lap_precond: Arc<dyn Preconditioner + 'p>,
+    cfg: &RunConfig,
+    results: &mut StageResults,
+) -> Result<RunConfig> {
+    let problem = &loaded.problem;
+    results.laplace_check = stages::laplace_check_stage(
+        problem,
+        &loaded.name,
+        map,
+        lap_precond.clone(),
+        cfg.laplace_check.draws,
+        cfg.check_seed,
+    )?;
+    let check_target = Target::new(problem, &loaded.name, map.x.clone(), lap_precond)?;
+    let lap_var = results
+        .laplace
+        .as_ref()
+        .map(|l| l.variance.clone())
+        .unwrap_or_default();
+    let choice = choose_kernel(
+        cfg.sampler.kernel,
+        &mut results.laplace_check,
+        Some(&check_target),
+        &lap_var,
+        cfg.check_seed,
+    )?;
+    results.kernel_reason = Some(choice.reason);
+    Ok(RunConfig {
+        sampler: SampleConfig {
+            kernel: choice.kernel,
+            ..cfg.sampler.clone()
+        },
+        ..cfg.clone()
+    })
 }
 
 /// Creates the folder; a new run refuses a folder that already holds one, and records its settings.
