@@ -96,7 +96,7 @@ pub fn choose_kernel(
                 })
             }
             Reading::Inconclusive(_) => {
-                let mut d = std::mem::replace(&mut c.sample, empty());
+                let mut d = std::mem::take(&mut c.sample);
                 d.extend(laplace_draws_from(target, c.draws, c.draws, seed)?);
                 *c = LaplaceCheck::of(d)?;
             }
@@ -108,18 +108,6 @@ fn hmc(reason: String) -> KernelChoice {
     KernelChoice {
         kernel: KernelKind::Hmc,
         reason,
-    }
-}
-
-fn empty() -> crate::sampler::importance::ImportanceDraws {
-    crate::sampler::importance::ImportanceDraws {
-        draws: crate::sampler::WeightedDraws {
-            x: Vec::new(),
-            log_weights: Vec::new(),
-        },
-        log_target: Vec::new(),
-        log_proposal: Vec::new(),
-        failed: 0,
     }
 }
 

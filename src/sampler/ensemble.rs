@@ -101,7 +101,7 @@ impl ChainDraws {
 }
 
 /// Weighted draws in model space with unnormalised log-weights (−∞ for a draw whose evaluation failed).
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct WeightedDraws {
     /// The draws, each of the problem's dimension.
     pub x: Vec<Vec<f64>>,

@@ -17,6 +17,7 @@ use crate::error::Result;
 pub const STREAM_OFFSET: u64 = 1_000;
 
 /// The weighted Laplace draws, with the log target and log proposal of each.
+#[derive(Default)]
 pub struct ImportanceDraws {
     /// Draws in model space with log w = log π − log q.
     pub draws: WeightedDraws,
